@@ -1,0 +1,860 @@
+"""The declarative recipe: schema, YAML loading with located errors, and the derived rate table.
+
+A recipe describes one frequency-tagging experiment: the unit (e.g. a syllable) with its slot
+duration, the levels that group units (word, line, stanza...), the token corpus, the material,
+the conditions, the trial layout, the re-timing / pitch / level policies, the output format,
+the acoustic-check settings and a seed.  Everything downstream reads a :class:`Recipe`.
+
+Relative paths in a recipe resolve against the folder of the recipe file.
+"""
+
+from __future__ import annotations
+
+import difflib
+import json
+import math
+import warnings
+from dataclasses import dataclass, field
+from fractions import Fraction
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+import yaml
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    ValidationInfo,
+    field_validator,
+    model_validator,
+)
+
+from .errors import RecipeError
+from .timing import exact, round_half_up, unit_start
+
+__all__ = [
+    "Recipe",
+    "RateTable",
+    "LevelRate",
+    "load_recipe",
+    "recipe_from_dict",
+    "rate_table",
+    "recipe_json_schema",
+    "TEMPLATE",
+    "RateWarning",
+]
+
+
+class RateWarning(UserWarning):
+    """Two tagged rates lie so close that their spectral bins can hardly be told apart."""
+
+
+def _resolve_path(value: Path | None, info: ValidationInfo) -> Path | None:
+    if value is None:
+        return None
+    base = (info.context or {}).get("base_dir")
+    value = Path(value).expanduser()
+    if base is not None and not value.is_absolute():
+        value = Path(base) / value
+    return value
+
+
+RecipePath = Annotated[Path, AfterValidator(_resolve_path)]
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+# --------------------------------------------------------------------------- hierarchy
+class UnitSpec(_Model):
+    """The lowest element of the structure (e.g. a syllable) and its fixed slot."""
+
+    name: str = Field("syllable", min_length=1, description="Name of the unit, e.g. 'syllable'.")
+    duration: float = Field(
+        ..., gt=0, le=10, description="Slot duration in seconds; every token is fitted to it."
+    )
+
+
+class LevelSpec(_Model):
+    """One grouping level above the unit."""
+
+    name: str = Field(..., min_length=1, description="Name of the level, e.g. 'word', 'line'.")
+    size: int = Field(
+        ..., ge=2, le=1000, description="Number of elements of the level just below per group."
+    )
+
+
+class HierarchySpec(_Model):
+    unit: UnitSpec
+    levels: list[LevelSpec] = Field(
+        ..., min_length=1, description="Grouping levels from the lowest upwards, to any depth."
+    )
+
+    @model_validator(mode="after")
+    def _unique_names(self) -> "HierarchySpec":
+        names = [self.unit.name] + [lv.name for lv in self.levels]
+        dup = sorted({n for n in names if names.count(n) > 1})
+        if dup:
+            raise ValueError(f"level names must be unique; repeated: {', '.join(dup)}")
+        return self
+
+    @property
+    def names(self) -> list[str]:
+        """Unit name first, then the level names upwards."""
+        return [self.unit.name] + [lv.name for lv in self.levels]
+
+    def units_per(self, name: str) -> int:
+        """Number of units in one group of level ``name`` (1 for the unit itself)."""
+        n = 1
+        if name == self.unit.name:
+            return 1
+        for lv in self.levels:
+            n *= lv.size
+            if lv.name == name:
+                return n
+        raise KeyError(name)
+
+
+# --------------------------------------------------------------------------- corpus
+class TrimSpec(_Model):
+    threshold_db: float = Field(
+        -40.0,
+        lt=0,
+        ge=-120,
+        description="Silence threshold in dB relative to the token's own peak (absolute value of "
+        "the signal, smoothed over 5 ms).",
+    )
+    pad: float = Field(0.0, ge=0, le=0.5, description="Seconds kept beyond each trim point.")
+
+
+class QCSpec(_Model):
+    quiet_dbfs: float = Field(-45.0, description="Flag tokens whose RMS (active part) is below this.")
+    clip_level: float = Field(
+        0.999, gt=0, le=1, description="|sample| at or above this counts as clipped."
+    )
+    max_clipped_fraction: float = Field(0.0, ge=0, le=1)
+    min_voiced_fraction: float = Field(0.05, ge=0, le=1)
+
+
+class CorpusSpec(_Model):
+    """Where the tokens come from: a folder with an index CSV, or a recording + TextGrid tier."""
+
+    index: RecipePath | None = Field(
+        None, description="index.csv (columns label, file, ...) or the folder that holds it."
+    )
+    recording: RecipePath | None = Field(None, description="One long recording (WAV/FLAC).")
+    textgrid: RecipePath | None = Field(None, description="TextGrid annotating the recording.")
+    tier: str | None = Field(None, description="Interval tier whose labelled intervals are tokens.")
+    trim: TrimSpec = TrimSpec()
+    qc: QCSpec = QCSpec()
+
+    @model_validator(mode="after")
+    def _one_source(self) -> "CorpusSpec":
+        tg = [self.recording, self.textgrid, self.tier]
+        if self.index is not None and any(v is not None for v in tg):
+            raise ValueError("give either 'index' or 'recording' + 'textgrid' + 'tier', not both")
+        if self.index is None:
+            if not all(v is not None for v in tg):
+                raise ValueError(
+                    "give 'index' (a corpus folder or its index.csv), or all three of "
+                    "'recording', 'textgrid' and 'tier'"
+                )
+        return self
+
+
+# --------------------------------------------------------------------------- material
+class GenerateSpec(_Model):
+    """Material drawn from an inventory instead of a text."""
+
+    mode: Literal["words", "units"] = Field(
+        ...,
+        description="'words': fixed multi-unit items streamed in random order; "
+        "'units': random unit draws from 'units'.",
+    )
+    words: list[list[str]] | None = Field(
+        None, description="For mode 'words': each item is a list of unit labels."
+    )
+    units: list[str] | None = Field(None, description="For mode 'units': the unit labels drawn.")
+    no_immediate_repeat: bool = Field(True, description="Never the same item twice in a row.")
+
+    @model_validator(mode="after")
+    def _fields_for_mode(self) -> "GenerateSpec":
+        if self.mode == "words":
+            if not self.words:
+                raise ValueError("mode 'words' needs a non-empty 'words' list")
+            lens = {len(w) for w in self.words}
+            if len(lens) != 1 or 0 in lens:
+                raise ValueError(
+                    f"every word must have the same number of units, got lengths {sorted(lens)}"
+                )
+        if self.mode == "units" and not self.units:
+            raise ValueError("mode 'units' needs a non-empty 'units' list")
+        return self
+
+
+class MaterialSpec(_Model):
+    text: RecipePath | None = Field(
+        None, description="Plain-text material file (format in the README: 'Material text')."
+    )
+    generate: GenerateSpec | None = None
+
+    @model_validator(mode="after")
+    def _one(self) -> "MaterialSpec":
+        if (self.text is None) == (self.generate is None):
+            raise ValueError("give exactly one of 'text' or 'generate'")
+        return self
+
+
+# --------------------------------------------------------------------------- conditions
+class ConditionSpec(_Model):
+    name: str = Field(..., min_length=1, pattern=r"^[A-Za-z0-9_\-]+$")
+    kind: Literal["intact", "scramble", "reverse"] = Field(
+        ...,
+        description="'intact': the material as written; 'scramble': groups of 'level' drawn from "
+        "the pool and regrouped (structure above 'level' broken); 'reverse': intact order, every "
+        "token time-reversed.",
+    )
+    level: str | None = Field(
+        None, description="For 'scramble': the unit name or a level name whose groups are kept."
+    )
+
+
+class RepeatSpec(_Model):
+    conditions: list[str] = Field(..., min_length=1, description="Conditions whose trials repeat.")
+    placement: Literal["adjacent", "spaced"] = Field(
+        "spaced", description="'adjacent': right after the original; 'spaced': later in the list."
+    )
+    times: int = Field(1, ge=1, le=10, description="Extra presentations of each trial.")
+
+
+class TrialsSpec(_Model):
+    groups_per_trial: int | None = Field(
+        None, ge=1, description="Top-level groups analysed per trial (whole cycles by construction)."
+    )
+    duration: float | None = Field(
+        None, gt=0, description="Alternative to groups_per_trial: analysed seconds per trial; "
+        "must be a whole number of cycles of the slowest level."
+    )
+    lead_in: bool = Field(True, description="Prepend one extra top-level group, marked lead-in.")
+    silence_before: float = Field(0.5, ge=0, le=60, description="Seconds of silence before.")
+    silence_after: float = Field(0.5, ge=0, le=60, description="Seconds of silence after.")
+    per_condition: int = Field(..., ge=1, description="Trials per condition (before repeats).")
+    lists: int = Field(1, ge=1, description="Participant lists (counterbalanced, seeded order).")
+
+    @model_validator(mode="after")
+    def _one_length(self) -> "TrialsSpec":
+        if (self.groups_per_trial is None) == (self.duration is None):
+            raise ValueError("give exactly one of 'groups_per_trial' or 'duration'")
+        return self
+
+
+class ConstraintsSpec(_Model):
+    no_adjacent_repeat: bool = Field(
+        True, description="No identical labels in adjacent units (scrambled conditions)."
+    )
+    max_uses_per_token: int | None = Field(
+        None, ge=1, description="Maximum occurrences of any one token file in the whole set."
+    )
+    max_attempts: int = Field(200, ge=1, le=100000, description="Bound on randomisation retries.")
+
+
+# --------------------------------------------------------------------------- processing
+class RetimeSpec(_Model):
+    backend: Literal["world", "cut-pad", "overlap-add"] = "world"
+    f0_method: Literal["harvest", "dio"] = Field("harvest", description="WORLD F0 estimator.")
+    frame_period: float = Field(5.0, ge=1, le=20, description="WORLD frame period in ms.")
+    f0_floor: float = Field(70.0, ge=40, le=400, description="Hz, for analysis.")
+    f0_ceil: float = Field(600.0, ge=100, le=2000, description="Hz, for analysis.")
+    stretch_range: tuple[float, float] = Field(
+        (0.6, 1.7), description="Allowed duration factors (target / token) [low, high]."
+    )
+    out_of_range: Literal["error", "warn", "cut-pad"] = Field(
+        "error", description="What to do with tokens whose factor falls outside stretch_range."
+    )
+    align: Literal["onset", "steepest-rise"] = "onset"
+    align_offset: float = Field(
+        0.03, ge=0, le=1, description="For 'steepest-rise': seconds into the slot of the rise."
+    )
+    jobs: int = Field(1, ge=1, le=256, description="Worker processes.")
+    cache: bool = True
+    cache_dir: RecipePath | None = Field(None, description="Default: the user cache folder.")
+
+    @field_validator("stretch_range")
+    @classmethod
+    def _range(cls, v: tuple[float, float]) -> tuple[float, float]:
+        lo, hi = v
+        if not (0 < lo <= 1 <= hi):
+            raise ValueError(f"need 0 < low <= 1 <= high, got [{lo}, {hi}]")
+        return v
+
+    @model_validator(mode="after")
+    def _f0(self) -> "RetimeSpec":
+        if self.f0_floor >= self.f0_ceil:
+            raise ValueError(f"f0_floor ({self.f0_floor}) must be below f0_ceil ({self.f0_ceil})")
+        return self
+
+
+class PitchSpec(_Model):
+    policy: Literal["flat", "level", "keep"] = Field(
+        "flat",
+        description="'flat': every voiced frame at target_hz; 'level': keep each token's contour, "
+        "move its geometric-mean F0 to target_hz (tone languages); 'keep': untouched.",
+    )
+    target_hz: float | None = Field(
+        None, gt=40, lt=1000, description="Default: median F0 over the corpus."
+    )
+
+
+class LevelSpecPolicy(_Model):
+    target_dbfs: float = Field(
+        -26.0, le=-3, ge=-80, description="RMS over each token's active part, dB re full scale."
+    )
+    active_threshold_db: float = Field(
+        -30.0, lt=0, ge=-80, description="Active part: envelope above this, dB re token peak."
+    )
+    peak_ceiling_dbfs: float = Field(-1.0, le=0, description="No sample may exceed this.")
+    fade: float = Field(0.01, ge=0.001, le=0.1, description="Raised-cosine fade in/out, seconds.")
+
+
+class OutputSpec(_Model):
+    sample_rate: int = Field(44100, ge=8000, le=192000)
+    subtype: Literal["PCM_16", "PCM_24", "PCM_32"] = Field(
+        "PCM_24", description="WAV subtype (FLOAT is not offered: its PEAK chunk breaks "
+        "byte-identical rebuilds)."
+    )
+
+
+class CheckSpec(_Model):
+    run: bool = Field(True, description="Run the acoustic check at the end of the build.")
+    alpha: float = Field(0.01, gt=0, lt=0.5, description="Family-wise error rate.")
+    sensitivity: bool = Field(True, description="Estimate the smallest detectable planted cues.")
+
+
+class Recipe(_Model):
+    """A whole experiment.  Build one with :func:`load_recipe` or :func:`recipe_from_dict`."""
+
+    name: str = Field(..., min_length=1, pattern=r"^[A-Za-z0-9_.\-]+$")
+    description: str = ""
+    seed: int = Field(..., ge=0, lt=2**63)
+    hierarchy: HierarchySpec
+    corpus: CorpusSpec
+    material: MaterialSpec
+    conditions: list[ConditionSpec] = Field(..., min_length=1)
+    repeat: RepeatSpec | None = None
+    trials: TrialsSpec
+    constraints: ConstraintsSpec = ConstraintsSpec()
+    retime: RetimeSpec = RetimeSpec()
+    pitch: PitchSpec = PitchSpec()
+    level: LevelSpecPolicy = LevelSpecPolicy()
+    output: OutputSpec = OutputSpec()
+    check: CheckSpec = CheckSpec()
+
+    # Set by load_recipe; excluded from the schema and from dumps.
+    source: Path | None = Field(None, exclude=True, json_schema_extra={"hidden": True})
+
+    @model_validator(mode="after")
+    def _cross(self) -> "Recipe":
+        names = [c.name for c in self.conditions]
+        dup = sorted({n for n in names if names.count(n) > 1})
+        if dup:
+            raise ValueError(f"condition names must be unique; repeated: {', '.join(dup)}")
+        levels = self.hierarchy.names
+        for i, c in enumerate(self.conditions):
+            if c.kind == "scramble":
+                if c.level is None:
+                    raise ValueError(
+                        f"conditions[{i}] ({c.name}): kind 'scramble' needs 'level', one of "
+                        f"{levels[:-1]}"
+                    )
+                if c.level not in levels[:-1]:
+                    hint = _did_you_mean(c.level, levels)
+                    raise ValueError(
+                        f"conditions[{i}] ({c.name}): level {c.level!r} must be one of "
+                        f"{levels[:-1]} (the top level cannot be scrambled){hint}"
+                    )
+            elif c.level is not None:
+                raise ValueError(f"conditions[{i}] ({c.name}): 'level' only goes with 'scramble'")
+        if self.repeat is not None:
+            for n in self.repeat.conditions:
+                if n not in names:
+                    raise ValueError(
+                        f"repeat.conditions: {n!r} is not a condition{_did_you_mean(n, names)}"
+                    )
+        if self.material.generate is not None and self.material.generate.mode == "words":
+            wl = len(self.material.generate.words[0])
+            if wl != self.hierarchy.levels[0].size:
+                raise ValueError(
+                    f"material.generate.words have {wl} units each but level "
+                    f"{self.hierarchy.levels[0].name!r} has size {self.hierarchy.levels[0].size}"
+                )
+        # Integer-cycle rule, checked here so every entry point sees it.
+        self.rates()
+        return self
+
+    # ------------------------------------------------------------------ derived
+    @property
+    def base_dir(self) -> Path:
+        return self.source.parent if self.source is not None else Path.cwd()
+
+    def groups_per_trial(self) -> int:
+        """Top-level groups analysed per trial (excluding the lead-in)."""
+        if self.trials.groups_per_trial is not None:
+            return self.trials.groups_per_trial
+        top = exact(self.hierarchy.unit.duration) * self.hierarchy.units_per(
+            self.hierarchy.levels[-1].name
+        )
+        n = exact(self.trials.duration) / top
+        if n.denominator != 1 or n < 1:
+            lo = max(1, math.floor(n))
+            hi = lo + 1 if lo >= n else math.ceil(n)
+            raise ValueError(
+                f"trials.duration {self.trials.duration} s is not a whole number of cycles of the "
+                f"slowest level {self.hierarchy.levels[-1].name!r} ({float(top):g} s); nearest "
+                f"valid lengths: {float(lo * top):g} s or {float(hi * top):g} s"
+            )
+        return int(n)
+
+    def rates(self) -> "RateTable":
+        """The rate table at the output sample rate."""
+        return rate_table(
+            unit_name=self.hierarchy.unit.name,
+            unit_duration=self.hierarchy.unit.duration,
+            levels=[(lv.name, lv.size) for lv in self.hierarchy.levels],
+            sr=self.output.sample_rate,
+            n_top_groups=self.groups_per_trial(),
+            lead_in=self.trials.lead_in,
+            silence_before=self.trials.silence_before,
+            silence_after=self.trials.silence_after,
+        )
+
+    def to_dict(self) -> dict[str, Any]:
+        """The resolved recipe as plain JSON-able data (paths absolute)."""
+        return json.loads(self.model_dump_json())
+
+
+# --------------------------------------------------------------------------- rate table
+@dataclass(frozen=True)
+class LevelRate:
+    """One row of the rate table."""
+
+    name: str
+    units_per_group: int
+    period: float  # seconds
+    rate: float  # Hz
+    bin: int  # FFT bin of the rate over the analysed window
+    period_exact: Fraction = field(repr=False, compare=False)
+
+
+@dataclass(frozen=True)
+class RateTable:
+    """Rates, periods and sample arithmetic derived from a hierarchy.
+
+    ``rows[0]`` is the unit; the others follow the levels upwards.  The analysed window is
+    ``n_top_groups`` top-level groups (the lead-in and silences excluded), so every rate is a
+    whole number of cycles and falls exactly on FFT bin ``rate * window``.
+    """
+
+    rows: tuple[LevelRate, ...]
+    sr: int
+    n_top_groups: int
+    lead_in: bool
+    silence_before: float
+    silence_after: float
+
+    @property
+    def unit(self) -> LevelRate:
+        return self.rows[0]
+
+    @property
+    def unit_samples(self) -> float:
+        """T * fs, possibly not whole."""
+        return float(self.rows[0].period_exact * self.sr)
+
+    @property
+    def slot_lengths(self) -> tuple[int, ...]:
+        """The distinct slot lengths in samples that the rounding rule produces."""
+        tfs = self.rows[0].period_exact * self.sr
+        return tuple(sorted({math.floor(tfs), math.ceil(tfs)}))
+
+    @property
+    def units_per_trial(self) -> int:
+        top = self.rows[-1].units_per_group
+        return top * (self.n_top_groups + (1 if self.lead_in else 0))
+
+    @property
+    def analysed_units(self) -> int:
+        return self.rows[-1].units_per_group * self.n_top_groups
+
+    @property
+    def window(self) -> float:
+        """Seconds analysed per trial (whole cycles of every rate)."""
+        return float(self.rows[0].period_exact * self.analysed_units)
+
+    @property
+    def resolution(self) -> float:
+        """Frequency resolution of the analysed window, Hz."""
+        return 1.0 / self.window
+
+    @property
+    def trial_duration(self) -> float:
+        """Whole trial file: silence + lead-in + analysed part + silence, seconds."""
+        return self.trial_samples / self.sr
+
+    @property
+    def trial_samples(self) -> int:
+        from .timing import seconds_to_samples
+
+        return (
+            seconds_to_samples(self.silence_before, sr=self.sr)
+            + unit_start(self.units_per_trial, unit_duration=float(self.rows[0].period_exact), sr=self.sr)
+            + seconds_to_samples(self.silence_after, sr=self.sr)
+        )
+
+    def row(self, name: str) -> LevelRate:
+        for r in self.rows:
+            if r.name == name:
+                return r
+        raise KeyError(name)
+
+    def close_pairs(self, min_bins: int = 3) -> list[tuple[str, str, int]]:
+        out = []
+        for i, a in enumerate(self.rows):
+            for b in self.rows[i + 1 :]:
+                if abs(a.bin - b.bin) < min_bins:
+                    out.append((a.name, b.name, abs(a.bin - b.bin)))
+        return out
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON layout written into manifest.json under "rate_table"."""
+        return {
+            "sample_rate": self.sr,
+            "unit_duration": float(self.rows[0].period_exact),
+            "unit_samples": self.unit_samples,
+            "slot_lengths": list(self.slot_lengths),
+            "rounding_rule": "unit k starts at sample round_half_up(k * T * fs) after the first unit",
+            "levels": [
+                {
+                    "name": r.name,
+                    "units_per_group": r.units_per_group,
+                    "period": r.period,
+                    "rate": r.rate,
+                    "bin": r.bin,
+                }
+                for r in self.rows
+            ],
+            "groups_per_trial": self.n_top_groups,
+            "lead_in": self.lead_in,
+            "units_per_trial": self.units_per_trial,
+            "analysed_units": self.analysed_units,
+            "window": self.window,
+            "resolution": self.resolution,
+            "silence_before": self.silence_before,
+            "silence_after": self.silence_after,
+            "trial_duration": self.trial_duration,
+            "trial_samples": self.trial_samples,
+        }
+
+    def format(self) -> str:
+        """A plain-text table for the terminal."""
+        lines = [
+            f"{'level':<12}{'units':>7}{'period (s)':>12}{'rate (Hz)':>11}{'FFT bin':>9}",
+        ]
+        for r in self.rows:
+            lines.append(
+                f"{r.name:<12}{r.units_per_group:>7}{r.period:>12.4f}{r.rate:>11.4f}{r.bin:>9d}"
+            )
+        tfs = self.unit_samples
+        lines.append(
+            f"sample rate {self.sr} Hz; T*fs = {tfs:g} samples per unit"
+            + ("" if float(tfs).is_integer() else f" (slots of {' or '.join(map(str, self.slot_lengths))})")
+        )
+        lines.append("rounding: unit k starts at sample round_half_up(k*T*fs) -> no drift")
+        lines.append(
+            f"analysed window {self.window:g} s ({self.n_top_groups} x {self.rows[-1].name}"
+            f"{', plus 1 lead-in' if self.lead_in else ''}); resolution {self.resolution:.4g} Hz; "
+            f"trial file {self.trial_duration:.3f} s"
+        )
+        return "\n".join(lines)
+
+
+def rate_table(
+    *,
+    unit_name: str,
+    unit_duration: float,
+    levels: list[tuple[str, int]],
+    sr: int,
+    n_top_groups: int,
+    lead_in: bool = False,
+    silence_before: float = 0.0,
+    silence_after: float = 0.0,
+) -> RateTable:
+    """Derive the rate table.
+
+    Parameters
+    ----------
+    unit_duration : float, seconds > 0
+        Slot duration of the unit.
+    levels : list of (name, size)
+        From the lowest group upwards; ``size`` counts elements of the level below.
+    sr : int, Hz
+        Output sample rate.
+    n_top_groups : int >= 1
+        Top-level groups in the analysed window.
+
+    Examples
+    --------
+    >>> t = rate_table(unit_name="syllable", unit_duration=0.25, levels=[("phrase", 2),
+    ...                ("sentence", 2)], sr=16000, n_top_groups=10)
+    >>> [r.rate for r in t.rows]
+    [4.0, 2.0, 1.0]
+    """
+    if n_top_groups < 1:
+        raise ValueError(f"n_top_groups must be >= 1, got {n_top_groups}")
+    T = exact(unit_duration)
+    n_units = 1
+    per = [(unit_name, 1)]
+    for name, size in levels:
+        n_units *= int(size)
+        per.append((name, n_units))
+    window = T * per[-1][1] * n_top_groups
+    rows = []
+    for name, k in per:
+        period = T * k
+        cycles = window / period  # whole by construction
+        rows.append(
+            LevelRate(
+                name=name,
+                units_per_group=k,
+                period=float(period),
+                rate=float(1 / period),
+                bin=int(cycles),
+                period_exact=period,
+            )
+        )
+    table = RateTable(
+        rows=tuple(rows),
+        sr=int(sr),
+        n_top_groups=int(n_top_groups),
+        lead_in=bool(lead_in),
+        silence_before=float(silence_before),
+        silence_after=float(silence_after),
+    )
+    for a, b, d in table.close_pairs():
+        warnings.warn(
+            f"rates of {a!r} and {b!r} are only {d} FFT bin(s) apart over a {table.window:g} s "
+            "window; use more groups per trial to separate them",
+            RateWarning,
+            stacklevel=2,
+        )
+    return table
+
+
+# --------------------------------------------------------------------------- loading
+def _did_you_mean(word: str, options: list[str]) -> str:
+    close = difflib.get_close_matches(str(word), [str(o) for o in options], n=1, cutoff=0.6)
+    return f"; did you mean {close[0]!r}?" if close else ""
+
+
+def _line_map(text: str) -> dict[tuple, int]:
+    """Map YAML paths (tuples of keys / indices) to 1-based line numbers."""
+    out: dict[tuple, int] = {}
+    try:
+        root = yaml.compose(text, Loader=yaml.SafeLoader)
+    except yaml.YAMLError:
+        return out
+
+    def walk(node: Any, path: tuple) -> None:
+        out[path] = node.start_mark.line + 1
+        if isinstance(node, yaml.MappingNode):
+            for k, v in node.value:
+                key = k.value
+                out[path + (key, "__key__")] = k.start_mark.line + 1
+                walk(v, path + (key,))
+        elif isinstance(node, yaml.SequenceNode):
+            for i, v in enumerate(node.value):
+                walk(v, path + (i,))
+
+    if root is not None:
+        walk(root, ())
+    return out
+
+
+def _model_at(loc: tuple) -> type[BaseModel] | None:
+    """The pydantic model class that holds the field at ``loc`` (for did-you-mean)."""
+    model: Any = Recipe
+    for part in loc[:-1]:
+        if isinstance(part, int):
+            continue
+        if not (isinstance(model, type) and issubclass(model, BaseModel)):
+            return None
+        f = model.model_fields.get(part)
+        if f is None:
+            return None
+        model = _inner_model(f.annotation)
+        if model is None:
+            return None
+    return model if isinstance(model, type) and issubclass(model, BaseModel) else None
+
+
+def _inner_model(ann: Any) -> Any:
+    import typing
+
+    if isinstance(ann, type) and issubclass(ann, BaseModel):
+        return ann
+    for a in typing.get_args(ann):
+        m = _inner_model(a)
+        if m is not None:
+            return m
+    return None
+
+
+def _format_errors(exc: ValidationError, *, source: str, lines: dict[tuple, int]) -> str:
+    msgs = []
+    for err in exc.errors(include_url=False):
+        loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
+        path = ".".join(f"[{p}]" if isinstance(p, int) else str(p) for p in loc).replace(".[", "[")
+        path = path or "(top level)"
+        line = lines.get(loc + ("__key__",)) or lines.get(loc)
+        if line is None:
+            for cut in range(len(loc) - 1, -1, -1):
+                line = lines.get(loc[:cut])
+                if line is not None:
+                    break
+        where = f"{source}:{line}" if line else source
+        etype = err["type"]
+        if etype == "extra_forbidden":
+            model = _model_at(loc)
+            options = list(model.model_fields) if model else []
+            options = [o for o in options if o != "source"]
+            hint = _did_you_mean(loc[-1], options)
+            msg = f"unknown key {loc[-1]!r}{hint} (allowed here: {', '.join(options)})"
+        elif etype == "missing":
+            msg = "required field is missing"
+        else:
+            msg = err["msg"]
+            if msg.startswith("Value error, "):
+                msg = msg[len("Value error, ") :]
+            if "input" in err and etype != "model_type" and not isinstance(err["input"], dict):
+                msg += f" (got {err['input']!r})"
+        msgs.append(f"{where}: {path}: {msg}")
+    return "\n".join(msgs)
+
+
+def recipe_from_dict(
+    data: dict[str, Any], *, base_dir: str | Path | None = None, source: str = "<recipe>",
+    lines: dict[tuple, int] | None = None,
+) -> Recipe:
+    """Validate a recipe given as a mapping (e.g. from a notebook).
+
+    Raises
+    ------
+    RecipeError
+        With one line per problem: ``source:line: yaml.path: rule (got value)``.
+    """
+    if not isinstance(data, dict):
+        raise RecipeError(f"{source}: a recipe must be a mapping of keys, got {type(data).__name__}")
+    ctx = {"base_dir": Path(base_dir) if base_dir is not None else Path.cwd()}
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RateWarning)
+            recipe = Recipe.model_validate(data, context=ctx)
+    except ValidationError as exc:
+        raise RecipeError(_format_errors(exc, source=source, lines=lines or {})) from None
+    recipe.rates()  # re-emit rate warnings once, outside the validator
+    return recipe
+
+
+def load_recipe(path: str | Path) -> Recipe:
+    """Load and validate a YAML recipe; relative paths resolve against its folder.
+
+    Raises
+    ------
+    RecipeError
+        If the file is missing, is not YAML, or breaks a rule of the schema.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise RecipeError(f"{path}: recipe file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise RecipeError(f"{path}: cannot read recipe: {exc}") from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f"{path}:{mark.line + 1}" if mark is not None else str(path)
+        problem = getattr(exc, "problem", None) or str(exc)
+        raise RecipeError(f"{where}: not valid YAML: {problem}") from None
+    if data is None:
+        raise RecipeError(f"{path}: the recipe file is empty")
+    recipe = recipe_from_dict(
+        data, base_dir=path.resolve().parent, source=str(path), lines=_line_map(text)
+    )
+    return recipe.model_copy(update={"source": path.resolve()})
+
+
+def recipe_json_schema() -> dict[str, Any]:
+    """JSON Schema of the recipe (draft 2020-12), for editors and validators."""
+    schema = Recipe.model_json_schema(mode="validation")
+    schema.get("properties", {}).pop("source", None)
+    schema["$schema"] = "https://json-schema.org/draft/2020-12/schema"
+    schema["title"] = "stimforge recipe"
+    return schema
+
+
+TEMPLATE = """\
+# stimforge recipe template.  Relative paths resolve against this file's folder.
+# Full reference: README.md, section "Recipe reference".  Editors can complete keys from
+# the JSON Schema printed by `stimforge schema`.
+name: my-experiment
+description: >
+  Two-syllable words, two words per line; 250 ms syllables -> 4 / 2 / 1 Hz.
+seed: 1                      # every random choice follows from this number
+
+hierarchy:
+  unit: {name: syllable, duration: 0.25}   # slot duration in seconds
+  levels:                                  # from the lowest group upwards
+    - {name: word, size: 2}                # 2 syllables per word
+    - {name: line, size: 2}                # 2 words per line
+
+corpus:
+  index: tokens/index.csv    # columns: label, file (relative to the CSV), any metadata
+  # recording: session.wav   # ... or one long recording cut by a TextGrid tier:
+  # textgrid: session.TextGrid
+  # tier: syllables
+  trim: {threshold_db: -40, pad: 0.0}      # dB below each token's own peak
+
+material:
+  text: material.txt         # units separated by spaces, "|" closes a word, "||" a line ...
+  # generate: {mode: words, words: [[ba, di], [ku, to]]}
+
+conditions:
+  - {name: intact, kind: intact}
+  - {name: scrambled, kind: scramble, level: syllable}   # random syllable list
+  # - {name: reversed, kind: reverse}
+
+# repeat: {conditions: [intact], placement: spaced}
+
+trials:
+  groups_per_trial: 10       # top-level groups analysed per trial
+  lead_in: true              # one extra group first, excluded from the analysis
+  silence_before: 0.5
+  silence_after: 0.5
+  per_condition: 10
+  lists: 1
+
+retime:
+  backend: world             # world | cut-pad | overlap-add
+  stretch_range: [0.6, 1.7]
+  out_of_range: error        # error | warn | cut-pad
+  align: onset               # onset | steepest-rise
+
+pitch: {policy: flat}        # flat | level (tone languages) | keep
+level: {target_dbfs: -26, fade: 0.01}
+output: {sample_rate: 44100, subtype: PCM_24}
+check: {run: true, alpha: 0.01}
+"""

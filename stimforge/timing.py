@@ -1,0 +1,53 @@
+"""Seconds <-> samples: the one place where the rounding rule lives.
+
+Rule (documented in the README): unit ``k`` of a trial starts at sample
+``round_half_up(k * T * fs)`` after the trial's first unit, computed in exact rational
+arithmetic from the decimal values written in the recipe.  Slot ``k`` is therefore
+``start(k + 1) - start(k)`` samples long: always ``floor(T*fs)`` or ``ceil(T*fs)``, and the
+error of any onset against the ideal grid is at most half a sample, however long the trial
+(no drift).
+"""
+
+from __future__ import annotations
+
+import math
+from fractions import Fraction
+
+__all__ = ["exact", "round_half_up", "unit_start", "slot_length", "seconds_to_samples"]
+
+
+def exact(value: float | int | str | Fraction) -> Fraction:
+    """Return the exact rational value of a decimal number as the user wrote it.
+
+    Floats go through their shortest ``repr`` so that ``0.3`` means 3/10, not the binary
+    approximation 0.299999999999999988898.
+    """
+    if isinstance(value, Fraction):
+        return value
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            raise ValueError(f"expected a finite number, got {value!r}")
+        return Fraction(repr(value))
+    return Fraction(value)
+
+
+def round_half_up(x: Fraction) -> int:
+    """Round a non-negative rational to the nearest integer, halves upwards."""
+    return math.floor(x + Fraction(1, 2))
+
+
+def unit_start(k: int, *, unit_duration: float, sr: int) -> int:
+    """Sample index of unit ``k``'s start, relative to the first unit: round(k * T * fs)."""
+    return round_half_up(k * exact(unit_duration) * sr)
+
+
+def slot_length(k: int, *, unit_duration: float, sr: int) -> int:
+    """Length in samples of slot ``k`` under the rounding rule."""
+    return unit_start(k + 1, unit_duration=unit_duration, sr=sr) - unit_start(
+        k, unit_duration=unit_duration, sr=sr
+    )
+
+
+def seconds_to_samples(seconds: float, *, sr: int) -> int:
+    """Convert a duration in seconds to samples with the same half-up rule."""
+    return round_half_up(exact(seconds) * sr)
