@@ -1,0 +1,114 @@
+"""Sample-exact trial assembly: processed tokens placed on the unit grid, and the unit tables.
+
+Unit ``k`` of a trial starts at sample ``S + round_half_up(k * T * fs)`` of the file, where
+``S`` is the leading silence in samples; its slot is ``start(k+1) - start(k)`` samples long and
+the processed token of exactly that length fills it.  Onsets never drift, however long the
+trial.  Memory: one trial at a time.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+
+from .recipe import HierarchySpec, RateTable
+from .timing import seconds_to_samples, unit_start
+
+__all__ = ["trial_layout", "assemble_trial", "unit_rows"]
+
+
+def trial_layout(rates: RateTable) -> tuple[int, np.ndarray, int]:
+    """Return (leading silence samples, unit start samples incl. the end, total samples).
+
+    ``starts`` has ``units_per_trial + 1`` entries: ``starts[k]`` is unit k's first sample in
+    the file and ``starts[-1]`` the end of the last unit.
+    """
+    lead = seconds_to_samples(rates.silence_before, sr=rates.sr)
+    T = rates.rows[0].period
+    starts = np.array(
+        [lead + unit_start(k, unit_duration=T, sr=rates.sr) for k in range(rates.units_per_trial + 1)],
+        dtype=np.int64,
+    )
+    total = int(starts[-1]) + seconds_to_samples(rates.silence_after, sr=rates.sr)
+    return lead, starts, total
+
+
+def assemble_trial(
+    units: list[tuple[str, bool]] | tuple,
+    *,
+    get: Callable[[str, int], np.ndarray],
+    rates: RateTable,
+) -> np.ndarray:
+    """Place each unit's processed token at its grid onset.
+
+    Parameters
+    ----------
+    units : sequence of (token_id, reversed)
+        One entry per unit of the trial, lead-in first.
+    get : callable (token_id, n_samples) -> ndarray
+        Returns the processed token of exactly ``n_samples`` samples.
+    rates : RateTable
+        Grid, sample rate and silences.
+
+    Returns
+    -------
+    ndarray, float64, shape (rates.trial_samples,)
+    """
+    _, starts, total = trial_layout(rates)
+    if len(units) != rates.units_per_trial:
+        raise ValueError(f"trial has {len(units)} units, the rate table expects {rates.units_per_trial}")
+    out = np.zeros(total, dtype=np.float64)
+    for k, (token_id, rev) in enumerate(units):
+        a, b = int(starts[k]), int(starts[k + 1])
+        seg = np.asarray(get(token_id, b - a))
+        if seg.shape != (b - a,):
+            raise ValueError(f"token {token_id!r}: processed length {seg.shape} != slot {b - a}")
+        out[a:b] = seg[::-1] if rev else seg
+    return out
+
+
+def unit_rows(
+    plan: Any,
+    *,
+    stim_file: str,
+    hierarchy: HierarchySpec,
+    rates: RateTable,
+) -> list[dict[str, Any]]:
+    """Rows of units.tsv for one trial: every unit of every level (lead-in included, flagged).
+
+    ``plan`` is a :class:`stimforge.design.TrialPlan`.
+    """
+    _, starts, _ = trial_layout(rates)
+    sr = rates.sr
+    rows: list[dict[str, Any]] = []
+    n_units = len(plan.units)
+    names = hierarchy.names
+    for li, name in enumerate(names):
+        per = rates.rows[li].units_per_group
+        parent_per = rates.rows[li + 1].units_per_group if li + 1 < len(names) else None
+        for g in range(n_units // per):
+            first, last = g * per, (g + 1) * per
+            if parent_per is None:
+                position = g + 1
+            else:
+                position = (first % parent_per) // per + 1
+            labels = [u.label for u in plan.units[first:last]]
+            rows.append(
+                {
+                    "stim_file": stim_file,
+                    "condition": plan.condition,
+                    "trial": plan.trial,
+                    "level": name,
+                    "index": g,
+                    "position": position,
+                    "label": labels[0] if per == 1 else "-".join(labels),
+                    "onset": round(int(starts[first]) / sr, 6),
+                    "duration": round((int(starts[last]) - int(starts[first])) / sr, 6),
+                    "token": plan.units[first].token_id if per == 1 else None,
+                    "lead_in": int(first < plan.lead_in_units),
+                    "reversed": int(all(u.reversed for u in plan.units[first:last])),
+                }
+            )
+    return rows

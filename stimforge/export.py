@@ -1,0 +1,173 @@
+"""Writing results: BIDS-style TSVs, hashes, the manifest, and the safe output-folder protocol.
+
+Safety protocol
+---------------
+A build writes into a hidden temporary sibling folder ``.<name>.partial-XXXX`` and only moves
+it into place when everything (audio, tables, manifest, check) has been written.  An
+interrupted or failed build therefore leaves no folder that looks complete (the partial folder
+is removed on failure; a killed process leaves only the hidden ``.partial`` folder).
+
+An output folder that exists and is not empty is refused unless ``overwrite=True``.  Even then
+only files that an earlier stimforge build wrote there *and that are unchanged* (their SHA-256
+matches that build's manifest) are replaced; every other file is left as it is, and a new output
+that would land on such a file stops the build before anything is touched.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import shutil
+import tempfile
+from collections.abc import Iterable, Sequence
+from pathlib import Path
+from typing import Any
+
+from .errors import BuildError
+
+__all__ = [
+    "MANIFEST",
+    "write_tsv",
+    "read_tsv",
+    "sha256_file",
+    "prepare_output",
+    "commit_output",
+    "json_dumps",
+]
+
+MANIFEST = "manifest.json"
+LOG = "build.log"
+
+
+def _fmt(v: Any) -> str:
+    if v is None:
+        return "n/a"
+    if isinstance(v, bool):
+        return "1" if v else "0"
+    if isinstance(v, float):
+        if math.isnan(v):
+            return "n/a"
+        if math.isinf(v):
+            return "-inf" if v < 0 else "inf"
+        return f"{v:.6f}".rstrip("0").rstrip(".") if v != int(v) or abs(v) < 1e15 else repr(v)
+    s = str(v)
+    if "\t" in s or "\n" in s:
+        raise ValueError(f"TSV value contains a tab or newline: {s!r}")
+    return s
+
+
+def write_tsv(path: Path, rows: Sequence[dict[str, Any]], columns: Sequence[str]) -> None:
+    """Write rows as a tab-separated table with a header; missing values become ``n/a``."""
+    lines = ["\t".join(columns)]
+    for r in rows:
+        lines.append("\t".join(_fmt(r.get(c)) for c in columns))
+    Path(path).write_text("\n".join(lines) + "\n", encoding="utf-8")
+
+
+def read_tsv(path: Path) -> list[dict[str, str]]:
+    """Read a TSV written by :func:`write_tsv` into a list of dicts of strings."""
+    text = Path(path).read_text(encoding="utf-8").splitlines()
+    if not text:
+        return []
+    cols = text[0].split("\t")
+    return [dict(zip(cols, ln.split("\t"))) for ln in text[1:] if ln]
+
+
+def sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def json_dumps(obj: Any) -> str:
+    """Deterministic JSON (sorted keys, NaN -> null)."""
+
+    def clean(o: Any) -> Any:
+        if isinstance(o, float):
+            return None if not math.isfinite(o) else o
+        if isinstance(o, dict):
+            return {str(k): clean(v) for k, v in o.items()}
+        if isinstance(o, (list, tuple)):
+            return [clean(v) for v in o]
+        if isinstance(o, Path):
+            return o.as_posix()
+        if hasattr(o, "item") and callable(o.item):  # numpy scalars
+            return clean(o.item())
+        return o
+
+    return json.dumps(clean(obj), indent=2, sort_keys=True, allow_nan=False) + "\n"
+
+
+def _previous_outputs(out: Path) -> dict[str, str]:
+    """Files a previous stimforge build recorded in ``out`` (relative path -> sha256)."""
+    mpath = out / MANIFEST
+    try:
+        man = json.loads(mpath.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    if not isinstance(man, dict) or "stimforge_version" not in man:
+        return {}
+    outputs = dict(man.get("outputs", {}))
+    outputs[MANIFEST] = sha256_file(mpath)  # the manifest itself is ours
+    return outputs
+
+
+def prepare_output(out: Path, *, overwrite: bool) -> Path:
+    """Check the destination and create the temporary sibling folder to build into.
+
+    Raises
+    ------
+    BuildError
+        If ``out`` exists, is not empty and ``overwrite`` is False, or is a file.
+    """
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise BuildError(f"output {out} exists and is not a folder; choose another --out")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise BuildError(
+            f"output folder {out} is not empty; choose a new --out, or pass --overwrite to replace "
+            "the files an earlier stimforge build wrote there (other files are never touched)"
+        )
+    out.parent.mkdir(parents=True, exist_ok=True)
+    return Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+
+
+def commit_output(tmp: Path, out: Path, *, overwrite: bool, keep: Iterable[str] = ()) -> None:
+    """Move the finished build from ``tmp`` to ``out`` (see the module's safety protocol)."""
+    tmp, out = Path(tmp), Path(out)
+    new_files = sorted(p.relative_to(tmp).as_posix() for p in tmp.rglob("*") if p.is_file())
+    if not out.exists() or (out.is_dir() and not any(out.iterdir())):
+        if out.exists():
+            out.rmdir()
+        os.replace(tmp, out)
+        return
+    if not overwrite:  # checked before, but the folder may have filled meanwhile
+        raise BuildError(f"output folder {out} is not empty and --overwrite was not given")
+    ours = _previous_outputs(out)
+    replaceable = {
+        rel for rel, digest in ours.items() if (out / rel).is_file() and sha256_file(out / rel) == digest
+    }
+    blocked = [rel for rel in new_files if (out / rel).exists() and rel not in replaceable]
+    if blocked:
+        shown = ", ".join(blocked[:5]) + (" ..." if len(blocked) > 5 else "")
+        raise BuildError(
+            f"--overwrite: {len(blocked)} file(s) in {out} were not written by stimforge (or were "
+            f"changed since): {shown}; move them away or choose another --out. Nothing was changed."
+        )
+    for rel in sorted(replaceable):
+        (out / rel).unlink()
+    # the manifest goes last: a folder whose manifest is new holds a whole new build
+    for rel in sorted(new_files, key=lambda r: r == MANIFEST):
+        dest = out / rel
+        dest.parent.mkdir(parents=True, exist_ok=True)
+        os.replace(tmp / rel, dest)
+    # remove folders that only the old build's files filled
+    parents = {(out / rel).parent for rel in replaceable} - {out}
+    for d in sorted(parents, key=lambda p: -len(p.parts)):
+        if d.is_dir() and not any(d.iterdir()):
+            d.rmdir()
+    shutil.rmtree(tmp, ignore_errors=True)
