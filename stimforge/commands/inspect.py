@@ -1,0 +1,79 @@
+"""`stimforge inspect CORPUS`: measure every token of a corpus and flag problems.
+
+Prints one row per token (its file, numbers and QC flags) and a summary.  Exit 0 when every token
+loads (flags are warnings); exit 2 when any file is missing, empty, truncated or not audio, after
+checking all of them and naming each with its reason.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser(
+        "inspect",
+        help="measure the tokens of a corpus (durations, levels, F0, QC flags)",
+        description="Measure every token listed in a corpus index.csv: durations before and after "
+        "trimming, peak/RMS level, noise floor, clipping, Praat voicing and F0, and QC flags. "
+        "Exit 0 if every file loads (flags are only warnings), 2 if any file is missing, empty, "
+        "truncated or not audio.",
+    )
+    p.add_argument("corpus", type=Path, help="corpus folder holding index.csv, or the CSV itself")
+    p.add_argument("--tsv", type=Path, metavar="PATH", help="also write the table as TSV here")
+    p.add_argument(
+        "--slot", type=float, metavar="SECONDS",
+        help="slot duration: flag tokens longer than this after trimming",
+    )
+    p.add_argument(
+        "--sr", type=int, metavar="HZ",
+        help="measure at this sample rate (default: each file's own rate)",
+    )
+    p.add_argument(
+        "--trim-db", type=float, default=None, metavar="DB",
+        help="trim threshold in dB below each token's peak (default -40)",
+    )
+    p.add_argument(
+        "--pad", type=float, default=None, metavar="SECONDS",
+        help="seconds kept beyond each trim point (default 0)",
+    )
+    p.set_defaults(run=run)
+
+
+def run(args) -> int:
+    from pydantic import ValidationError
+
+    from ..corpus import inspect_corpus
+    from ..errors import CorpusError
+    from ..recipe import TrimSpec
+
+    if args.slot is not None and not args.slot > 0:
+        raise CorpusError(f"--slot must be a positive number of seconds, got {args.slot}")
+    kw = {}
+    if args.trim_db is not None:
+        kw["threshold_db"] = args.trim_db
+    if args.pad is not None:
+        kw["pad"] = args.pad
+    try:
+        trim = TrimSpec(**kw)
+    except ValidationError as exc:
+        msgs = "; ".join(f"{e['loc'][0]}: {e['msg']}" for e in exc.errors(include_url=False))
+        raise CorpusError(f"bad trim option: {msgs}") from None
+    report = inspect_corpus(
+        args.corpus, sr=args.sr, slot_duration=args.slot, trim=trim,
+        progress=sys.stderr.isatty(),
+    )
+    print(report.format_table(include_bad=False))
+    if args.tsv is not None:
+        report.write_tsv(args.tsv)
+        print(f"wrote {args.tsv}")
+    if report.bad:
+        print(
+            f"error: {len(report.bad)} file(s)/row(s) of {report.index} cannot be used:",
+            file=sys.stderr,
+        )
+        for b in report.bad:
+            print(f"  {b.describe()}", file=sys.stderr)
+        return 2
+    return 0
