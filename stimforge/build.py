@@ -235,6 +235,7 @@ def build(
             jobs=jobs if jobs is not None else recipe.retime.jobs,
             progress=progress,
             cache_dir=recipe.retime.cache_dir,
+            onset_threshold_db=recipe.retime.onset_threshold_db,
         )
         for w in processed.warnings:
             note(f"re-timing: {w}")
@@ -371,7 +372,7 @@ def _summary(recipe, rates, design, trial_rows, processed, out) -> str:
         "",
         design.format_balance(),
         "",
-        f"listen: {out / files[0]}" if files else "",
+        f"listen first to: {files[0]} (in the build folder)" if files else "",
         CAUTION,
     ]
     return "\n".join(lines) + "\n"

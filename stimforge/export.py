@@ -112,7 +112,9 @@ def _previous_outputs(out: Path) -> dict[str, str]:
     if not isinstance(man, dict) or "stimforge_version" not in man:
         return {}
     outputs = dict(man.get("outputs", {}))
-    outputs[MANIFEST] = sha256_file(mpath)  # the manifest itself is ours
+    outputs[MANIFEST] = sha256_file(mpath)  # the manifest itself is ours,
+    if (out / LOG).is_file():  # and so is the log written beside it (not hashed: timestamps)
+        outputs[LOG] = sha256_file(out / LOG)
     return outputs
 
 

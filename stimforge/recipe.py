@@ -276,7 +276,12 @@ class RetimeSpec(_Model):
     )
     align: Literal["onset", "steepest-rise"] = "onset"
     align_offset: float = Field(
-        0.03, ge=0, le=1, description="For 'steepest-rise': seconds into the slot of the rise."
+        0.1, ge=0, le=1, description="For 'steepest-rise': seconds into the slot of the rise."
+    )
+    onset_threshold_db: float = Field(
+        -40.0, lt=0, ge=-120,
+        description="For 'onset': the acoustic onset is where the envelope first comes within "
+        "this many dB of the token's peak.",
     )
     jobs: int = Field(1, ge=1, le=256, description="Worker processes.")
     cache: bool = True
@@ -851,7 +856,7 @@ retime:
   backend: world             # world | cut-pad | overlap-add
   stretch_range: [0.6, 1.7]
   out_of_range: error        # error | warn | cut-pad
-  align: onset               # onset | steepest-rise
+  align: onset               # onset | steepest-rise (then align_offset: 0.1)
 
 pitch: {policy: flat}        # flat | level (tone languages) | keep
 level: {target_dbfs: -26, fade: 0.01}

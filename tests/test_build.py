@@ -71,7 +71,7 @@ def write_recipe(folder: Path, **over) -> Path:
                        {"name": "scrambled", "kind": "scramble", "level": "syllable"},
                        {"name": "reversed", "kind": "reverse"}],
         "repeat": {"conditions": ["intact"], "placement": "adjacent"},
-        "trials": {"groups_per_trial": 2, "lead_in": True, "silence_before": 0.1,
+        "trials": {"groups_per_trial": 3, "lead_in": True, "silence_before": 0.1,
                    "silence_after": 0.1, "per_condition": 2, "lists": 2},
         "retime": {"backend": "world", "cache_dir": str(folder / "cache")},
         "pitch": {"policy": "flat"},
@@ -179,8 +179,8 @@ def test_hierarchy_tiles(tiny):
     sizes = {"word": 2, "line": 2}
     for stim in {u["stim_file"] for u in units}:
         rows = {n: [u for u in units if u["stim_file"] == stim and u["level"] == n] for n in names}
-        # 3 lines (1 lead-in + 2) x 2 words x 2 syllables
-        assert [len(rows[n]) for n in names] == [12, 6, 3]
+        # 4 lines (1 lead-in + 3) x 2 words x 2 syllables
+        assert [len(rows[n]) for n in names] == [16, 8, 4]
         for child, parent in [("syllable", "word"), ("word", "line")]:
             for g, p in enumerate(rows[parent]):
                 kids = rows[child][g * sizes[parent]:(g + 1) * sizes[parent]]
@@ -189,7 +189,7 @@ def test_hierarchy_tiles(tiny):
                 assert end == pytest.approx(float(p["onset"]) + float(p["duration"]), abs=1e-6)
                 assert [int(k["position"]) for k in kids] == [1, 2]
                 assert "-".join(k["label"] for k in kids) == p["label"]
-        assert [int(r["lead_in"]) for r in rows["line"]] == [1, 0, 0]
+        assert [int(r["lead_in"]) for r in rows["line"]] == [1, 0, 0, 0]
 
 
 def test_label_balance_across_conditions(tiny):
