@@ -1,0 +1,266 @@
+"""Statistics of the acoustic check against published values and by simulation.
+
+Every check value carries its source.  Simulations use the statistics layer on synthetic
+complex spectra and feature tables (no audio), so they stay cheap.  Random tests take the
+shared ``rng`` fixture (tests/conftest.py).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from stimforge import verify as V
+from stimforge import verify_stats as vs
+
+
+# --------------------------------------------------------------------------------------------
+# ERB scale
+# --------------------------------------------------------------------------------------------
+@pytest.mark.parametrize(
+    "f, expected",
+    # Glasberg & Moore 1990, Hear Res 47:103-138, ERB = 24.7 (4.37 F + 1); values [calc] in
+    # DOMAIN.md "Statistics and check values".
+    [(100, 35.49), (500, 78.67), (1000, 132.64), (2000, 240.58), (4000, 456.46)],
+)
+def test_erb_values(f, expected):
+    assert vs.erb(f) == pytest.approx(expected, abs=0.01)
+
+
+def test_erb_space_is_equal_in_erb_number():
+    c = vs.erb_space(180.0, 7250.0, 32)
+    assert c[0] == pytest.approx(180.0) and c[-1] == pytest.approx(7250.0)
+    steps = np.diff(vs.erb_number(c))
+    assert np.allclose(steps, steps[0])  # equal ERB-number spacing (definition)
+    # ERB-number of 1 kHz = 21.4 log10(5.37) = 15.62 Cams (Glasberg & Moore 1990) [calc]
+    assert vs.erb_number(1000.0) == pytest.approx(15.62, abs=0.01)
+
+
+def test_gammatone_bank_centres_and_bandwidths():
+    centres, bank = V.gammatone_bank()
+    from scipy import signal as sps
+
+    assert len(bank) == 32
+    for i in (0, 8, 16, 24):
+        w, h = sps.sosfreqz(bank[i], worN=2 ** 16, fs=V.AUDITORY_SR)
+        m = np.abs(h)
+        assert w[np.argmax(m)] == pytest.approx(centres[i], rel=0.01)
+        band = w[m >= m.max() / np.sqrt(2)]
+        # 3-dB bandwidth of a 4th-order gammatone = 0.887 ERB (Patterson et al. 1992 / Holdsworth
+        # et al. 1988; from memory)
+        assert (band[-1] - band[0]) / vs.erb(centres[i]) == pytest.approx(0.887, rel=0.03)
+
+
+# --------------------------------------------------------------------------------------------
+# Rayleigh test
+# --------------------------------------------------------------------------------------------
+def test_rayleigh_zar_example():
+    # Zar, Biostatistical Analysis, Example 27.2 (DOMAIN.md [src]).
+    ang = np.deg2rad([66, 75, 86, 88, 88, 93, 97, 101, 118, 130])
+    r = vs.rayleigh(ang)
+    assert r["r"] == pytest.approx(0.9521, abs=1e-4)
+    assert np.rad2deg(r["mean_angle"]) == pytest.approx(94.05, abs=0.01)
+    assert r["z"] == pytest.approx(9.066, abs=1e-3)
+    assert r["p"] == pytest.approx(5.3e-6, rel=0.02)
+
+
+def test_rayleigh_same_from_complex_values():
+    ang = np.deg2rad([66, 75, 86, 88, 88, 93, 97, 101, 118, 130])
+    z = np.array([3.0, 0.5, 1.0, 2.0, 7.0, 1.0, 1.0, 0.2, 4.0, 1.0]) * np.exp(1j * ang)
+    assert vs.rayleigh(z)["r"] == pytest.approx(vs.rayleigh(ang)["r"])
+
+
+def test_rayleigh_p_half_coherence():
+    # n = 10, r = 0.5 -> p 0.0794 (DOMAIN.md, Zar's formula) [calc]
+    assert vs.rayleigh_p(10, 5.0) == pytest.approx(0.0794, abs=1e-4)
+
+
+@pytest.mark.parametrize(
+    "n, z05, z01",
+    # Critical z at .05 / .01 (DOMAIN.md [calc] from Zar's formula; Zar's Table B.34 lists the
+    # same to 3 decimals).
+    [(10, 2.921, 4.305), (20, 2.958, 4.455), (100, 2.988, 4.575)],
+)
+def test_rayleigh_critical_values(n, z05, z01):
+    assert vs.rayleigh_p(n, np.sqrt(z05 * n)) == pytest.approx(0.05, abs=5e-4)
+    assert vs.rayleigh_p(n, np.sqrt(z01 * n)) == pytest.approx(0.01, abs=2e-4)
+
+
+def test_rayleigh_p_stays_a_probability():
+    # Zar's closed form never leaves [0, 1] (the old series can go negative; DOMAIN.md).
+    for n in (2, 3, 5, 10):
+        p = vs.rayleigh_p(n, np.linspace(0, n, 200))
+        assert np.all((p >= 0) & (p <= 1))
+        assert np.all(np.diff(p) <= 1e-12)  # monotone in R
+
+
+def test_rayleigh_limit_large_n():
+    # n -> inf: p -> exp(-z); critical z .05 = 2.996 (DOMAIN.md [calc]: -ln 0.05)
+    assert vs.rayleigh_p(100000, np.sqrt(2.996 * 100000)) == pytest.approx(0.05, abs=2e-4)
+
+
+# --------------------------------------------------------------------------------------------
+# Hotelling T2circ
+# --------------------------------------------------------------------------------------------
+def test_t2circ_worked_values():
+    # DOMAIN.md [calc] for Victor & Mast 1991's statistic.
+    z = np.array([1, 1 + 0.5j, 0.5 + 1j, 1.5 + 0.5j, 1 + 1j, 0.2 + 0.3j])
+    r = vs.t2circ(z)
+    assert r["T2"] == pytest.approx(2.9132, abs=1e-4)
+    assert r["F"] == pytest.approx(17.479, abs=1e-3)
+    assert r["df"] == (2, 10)
+    assert r["p"] == pytest.approx(5.44e-4, rel=0.005)
+
+
+def test_t2circ_vectorised_matches_scalar(rng):
+    Z = rng.standard_normal((12, 5)) + 1j * rng.standard_normal((12, 5)) + 0.3
+    vec = vs.t2circ(Z, axis=0)["p"]
+    assert np.allclose(vec, [vs.t2circ(Z[:, k])["p"] for k in range(5)])
+
+
+# --------------------------------------------------------------------------------------------
+# Neighbour ratios, leakage
+# --------------------------------------------------------------------------------------------
+def test_meigen_bach_critical_ratios_by_monte_carlo(rng):
+    # Amplitude / mean of the 2 adjacent bins, noise only: 2.82 / 4.55 / 8.40 at .05/.01/.001
+    # (Meigen & Bach 1999, Doc Ophthalmol 98:207-232; DOMAIN.md [src]).
+    N = 400_000
+    X = rng.standard_normal((N, 3)) + 1j * rng.standard_normal((N, 3))
+    ratio, _ = vs.neighbour_ratio(X, 1, np.array([0, 2]))
+    q = np.quantile(ratio, [0.95, 0.99, 0.999])
+    assert q[0] == pytest.approx(2.82, abs=0.05)
+    assert q[1] == pytest.approx(4.55, abs=0.12)
+    assert q[2] == pytest.approx(8.40, abs=0.5)
+
+
+def test_leakage_whole_vs_non_whole_cycles():
+    # DOMAIN.md [calc]: a 1 Hz component over 10.125 s lands at 0.988 Hz with amplitude 0.981
+    # and spills into neighbours; over 10 s it sits in one bin.  The amplitude off-bin is
+    # sinc(1/8) = 0.9745 plus or minus the negative-frequency image's ~0.005, depending on the
+    # phase [calc]; the 0.981 of DOMAIN.md is at the top of that range, so the check is 0.975
+    # +- 0.01.
+    sr = 200.0
+    for win, peak_f, peak_a, tol, spill in ((10.125, 0.988, 0.975, 0.01, True),
+                                            (10.0, 1.0, 1.0, 1e-9, False)):
+        t = np.arange(int(round(win * sr))) / sr
+        for phase in (0.0, 1.0, 2.0):
+            X = vs.dft_bins(np.cos(2 * np.pi * 1.0 * t + phase), sr=sr, window=win, n_bins=40)
+            k = int(np.argmax(np.abs(X)))
+            assert k / win == pytest.approx(peak_f, abs=5e-4)
+            assert abs(X[k]) == pytest.approx(peak_a, abs=tol)
+            nb = np.abs(X[[k - 1, k + 1]])
+            assert (nb.max() > 0.1) if spill else (nb.max() < 1e-9)
+
+
+def test_dft_bins_explicit_equals_fft(rng):
+    x = rng.standard_normal(1600)
+    a = vs.dft_bins(x, sr=200.0, window=8.0, n_bins=50)  # FFT path
+    b = vs.dft_bins(x[None, :], sr=200.0, window=8.0 + 1e-5, n_bins=50)[0]  # explicit path
+    assert np.allclose(a, b, atol=1e-4)
+
+
+def test_neighbour_bins_skip_structure_and_adjacent():
+    nb = vs.neighbour_bins(8, n_total=60, exclude=frozenset(range(0, 60, 4)))
+    assert 7 not in nb and 9 not in nb and 4 not in nb and 12 not in nb
+    assert nb.size == 8 and np.all(nb >= 1)
+    low = vs.neighbour_bins(4, n_total=60, exclude=frozenset(range(0, 60, 4)))
+    assert low.size == 8 and 0 not in low  # made up from above near 0 Hz
+
+
+# --------------------------------------------------------------------------------------------
+# Calibration under the null (simulation)
+# --------------------------------------------------------------------------------------------
+def test_single_tests_are_calibrated(rng):
+    # Under the null each p-value is uniform, so P(p < .05) = .05 (definition); 3000 draws give
+    # a binomial SE of 0.004.
+    n_sim, M, K = 3000, 20, 30
+    Z = rng.standard_normal((n_sim, M, K)) + 1j * rng.standard_normal((n_sim, M, K))
+    p_ray = vs.rayleigh(Z[:, :, 10], axis=1)["p"]
+    p_t2 = vs.t2circ(Z[:, :, 10], axis=1)["p"]
+    nb = vs.neighbour_bins(10, n_total=K, exclude=frozenset())
+    p_ev = np.array([vs.evoked_test(Z[i].mean(axis=0), 10, nb)["p"] for i in range(n_sim)])
+    for p in (p_ray, p_t2, p_ev):
+        assert np.mean(p < 0.05) == pytest.approx(0.05, abs=0.015)
+        assert stats.kstest(p, "uniform").pvalue > 1e-3
+
+
+def test_phase_locked_signal_is_found(rng):
+    # A weak component of fixed phase in every trial: T2circ and ITPC find what the
+    # magnitude average hides (DOMAIN.md "The acoustic check", common practice).
+    M, K = 20, 30
+    Z = rng.standard_normal((M, K)) + 1j * rng.standard_normal((M, K))
+    Z[:, 10] += 2.5  # per-trial amplitude SNR 2.5 / sqrt(2) ~ 5 dB
+    assert vs.t2circ(Z[:, 10])["p"] < 1e-3
+    assert vs.rayleigh(Z[:, 10])["p"] < 1e-3
+
+
+def test_friedman_matches_scipy(rng):
+    # Reference library: scipy.stats.friedmanchisquare (k >= 3, no ties).
+    x = rng.standard_normal((40, 4)) + np.array([0, 0.3, 0, 0])
+    ours = vs.friedman(x)
+    ref = stats.friedmanchisquare(*x.T)
+    assert ours.statistic == pytest.approx(ref.statistic)
+    assert ours.p == pytest.approx(ref.pvalue)
+    assert 0 <= ours.effect <= 1
+
+
+def test_friedman_two_positions_is_sign_test_chi2(rng):
+    # k = 2, no ties: Q = (n_plus - n_minus)^2 / n (sign test chi-square) [calc]
+    x = rng.standard_normal((50, 2)) + np.array([0.0, 0.4])
+    npos = int(np.sum(x[:, 1] > x[:, 0]))
+    q = (npos - (50 - npos)) ** 2 / 50
+    assert vs.friedman(x).statistic == pytest.approx(q)
+
+
+def test_friedman_ties_and_nan():
+    x = np.array([[1.0, 1.0, 1.0]] * 10)
+    assert vs.friedman(x).p == 1.0  # all tied: no evidence (definition)
+    y = np.array([[1.0, 2.0, 3.0]] * 10)
+    y[0, 1] = np.nan
+    r = vs.friedman(y)
+    assert r.n_blocks == 9 and r.effect == pytest.approx(1.0)  # perfect agreement: W = 1
+
+
+def test_holm_hand_example():
+    # p = .01 .04 .03 .005 -> Holm 0.03 0.06 0.06 0.02 (Holm 1979 step-down) [calc]
+    assert np.allclose(vs.holm([0.01, 0.04, 0.03, 0.005]), [0.03, 0.06, 0.06, 0.02])
+    assert np.isnan(vs.holm([np.nan, 0.2])[0])
+
+
+def _design():
+    return V.Design(unit_name="syllable", unit_duration=0.25, levels=(("line", 4), ("pair", 2)),
+                    sr=16000, window=8.0, n_units=32, mode="files", source="simulation")
+
+
+def test_target_bins_cover_each_harmonic_once():
+    # 4/1/0.5 Hz over 8 s: line 1,2,3 Hz; pair 0.5,1.5,2.5,3.5 Hz; 4 Hz (unit) excluded [calc]
+    tb = V.target_bins(_design())
+    assert sorted(k for n, k, _ in tb if n == "line") == [8, 16, 24]
+    assert sorted(k for n, k, _ in tb if n == "pair") == [4, 12, 20, 28]
+
+
+def test_clean_sets_pass_at_about_alpha(rng):
+    """The whole family (spectral + features + joins, Holm) on simulated clean sets.
+
+    Synthetic complex spectra with a smooth, falling noise floor and random feature tables; the
+    family-wise false-positive rate must be at most about alpha (Holm guarantees <= alpha;
+    correlated tests make it smaller).  alpha = 0.05 so that 300 sets give a usable count.
+    """
+    d = _design()
+    K = V.n_bins_needed(d)
+    scale = 1.0 / np.sqrt(1.0 + np.arange(K) / 8.0)
+    alpha, n_sim, hits = 0.05, 300, 0
+    for _ in range(n_sim):
+        rows = []
+        for kind in V.ENVELOPES:
+            Z = (rng.standard_normal((20, K)) + 1j * rng.standard_normal((20, K))) * scale
+            rows += V.spectral_rows(Z, design=d, condition="c", kind=kind)
+        rows += V.feature_rows(rng.standard_normal((20, 32, len(V.FEATURES))), design=d,
+                               condition="c")
+        rows += V.join_rows(rng.standard_normal((20, 32)), design=d, condition="c")
+        V.apply_holm(rows, alpha)
+        hits += any(r["significant"] for r in rows)
+    rate = hits / n_sim
+    # binomial SE at 0.05 over 300 sets is 0.0126: allow 0.01 .. 0.08
+    assert 0.01 <= rate <= 0.08, rate
