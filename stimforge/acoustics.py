@@ -135,13 +135,17 @@ def semitones(f: np.ndarray | float, ref: float) -> np.ndarray | float:
     return 12.0 * np.log2(np.asarray(f, dtype=np.float64) / ref)
 
 
-def steepest_rise_time(x: np.ndarray, *, sr: int, smooth: float = 0.010) -> float:
+def steepest_rise_time(x: np.ndarray, *, sr: int, smooth: float = 0.020) -> float:
     """Latency (s from the start of ``x``) of the steepest rise of the smoothed envelope.
 
-    The envelope is |x| smoothed over ``smooth`` seconds; its first difference's maximum marks
-    the rise.  Returns NaN for silence.
+    The envelope is |x| smoothed twice by a centred ``smooth``-second moving average (a
+    triangular window of ``2 * smooth``).  One boxcar pass leaves a ripple at F0 (about +-10 %
+    at 120 Hz for 20 ms) whose slopes can outrank a smeared onset; the second pass cuts it
+    about tenfold, and the symmetric window keeps a step's latency where it is.  The maximum
+    of the first difference marks the rise.  Returns NaN for silence.
     """
     env = smoothed_envelope(x, sr=sr, smooth=smooth)
+    env = smoothed_envelope(env, sr=sr, smooth=smooth)
     if env.size < 3 or float(np.max(env)) <= 0:
         return float("nan")
     d = np.diff(env)

@@ -666,16 +666,10 @@ class _Partial:
 def rise_time(y: np.ndarray, *, sr: int) -> float:
     """Latency (s) of the steepest envelope rise used by ``steepest-rise`` alignment.
 
-    :func:`stimforge.acoustics.steepest_rise_time` applied to the ``ALIGN_SMOOTH_S`` boxcar
-    envelope of ``y`` (so the envelope is smoothed twice: a triangular window of
-    ``2 * ALIGN_SMOOTH_S``).  One boxcar pass leaves a ripple at F0 (about +-10 % at 120 Hz
-    for 20 ms) whose slopes can outrank a smeared onset; the second pass cuts it about
-    tenfold, and a symmetric window keeps the latency of a step where it is.
+    :func:`stimforge.acoustics.steepest_rise_time` with ``ALIGN_SMOOTH_S`` smoothing (the same
+    measure the acoustic check reports per position).
     """
-    from .acoustics import smoothed_envelope
-
-    env = smoothed_envelope(y, sr=sr, smooth=ALIGN_SMOOTH_S)
-    return steepest_rise_time(env, sr=sr, smooth=ALIGN_SMOOTH_S)
+    return steepest_rise_time(y, sr=sr, smooth=ALIGN_SMOOTH_S)
 
 
 def _align(
