@@ -1158,8 +1158,14 @@ def make_design(
         for ci in rows[(li_ - 1) % len(rows)]:
             cname = names[ci]
             reps = rep.times if (rep and cname in rep_conds) else 0
+            trial_ids = [
+                t for t in range(1, n_trials + 1)
+                if not recipe.trials.rotate_items or (t - 1 + li_ - 1) % len(names) == ci
+            ]
+            if not trial_ids:
+                continue
             block, gap = _block(
-                list(range(1, n_trials + 1)),
+                trial_ids,
                 reps,
                 rep.placement if rep else "adjacent",
                 g,
@@ -1189,7 +1195,9 @@ def make_design(
         ),
         "material_groups": n_mat,
         "groups_needed": n_needed,
-        "list_design": "Williams balanced Latin square over condition blocks",
+        "list_design": "Williams balanced Latin square over condition blocks"
+        + ("; items rotate: list l plays trial t in condition (t + l) mod C"
+           if recipe.trials.rotate_items else ""),
     }
     return Design(
         trials=tuple(plans),

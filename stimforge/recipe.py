@@ -243,6 +243,12 @@ class TrialsSpec(_Model):
     silence_after: float = Field(0.5, ge=0, le=60, description="Seconds of silence after.")
     per_condition: int = Field(..., ge=1, description="Trials per condition (before repeats).")
     lists: int = Field(1, ge=1, description="Participant lists (counterbalanced, seeded order).")
+    rotate_items: bool = Field(
+        False,
+        description="Latin square over conditions where items rotate: list l plays trial t only "
+        "in condition (t + l) mod C, so each list holds every trial number once, in one "
+        "condition, and C lists together play every trial in every condition.",
+    )
 
     @model_validator(mode="after")
     def _one_length(self) -> "TrialsSpec":

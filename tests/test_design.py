@@ -496,6 +496,25 @@ def test_lists_latin_square_and_stable(tmp_path, design_seed):
     assert [p for p in d5.presentations if p.list <= 4] == list(d4.presentations)
 
 
+def test_lists_with_rotating_items(tmp_path, design_seed):
+    """Latin square where items rotate: each list holds every trial number once, in one
+    condition; over C lists every (condition, trial) is played exactly once (common practice)."""
+    r = _recipe(tmp_path, text=_material_text(40), trials={"lists": 4, "rotate_items": True})
+    d = make_design(r, _pool(), rng=design_seed)
+    n_trials = r.trials.per_condition
+    seen = []
+    for li in range(1, 5):
+        pres = [p for p in d.list_presentations(li) if p.repetition == 1]
+        assert sorted(p.trial for p in pres) == list(range(1, n_trials + 1))
+        # trial t sits in condition (t - 1 + l - 1) mod C of the recipe's order
+        names = [c.name for c in r.conditions]
+        assert all(names.index(p.condition) == (p.trial - 1 + li - 1) % 4 for p in pres)
+        seen += [(p.condition, p.trial) for p in pres]
+    assert sorted(seen) == sorted({(p.condition, p.trial) for p in d.trials})
+    assert len(seen) == len(set(seen))
+    assert "items rotate" in d.seed_info["list_design"]
+
+
 # --------------------------------------------------------------------------- determinism
 def test_determinism(recipe, design_seed):
     a = make_design(recipe, _pool(), rng=design_seed)

@@ -26,10 +26,11 @@ def add_build_options(p) -> None:
 def report(result) -> int:
     """Print the closing summary; return the exit code (1 if the check found a cue)."""
     print(result.summary)
-    if result.check is not None:
-        print(result.check.format_table())
-        print(f"check report: {result.out / 'check'}")
     print(f"build folder: {result.out}")
+    if result.check is not None:
+        verdict = "PASS: no cue found" if result.check.passed else "FAIL: a cue was found"
+        print(f"acoustic check: {verdict}; report {result.out / 'check' / 'check.html'}; "
+              f"full table: stimforge check {result.out}")
     if result.check is not None and not result.check.passed:
         return 1
     return 0
