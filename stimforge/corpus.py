@@ -236,7 +236,8 @@ class _FileProblem(Exception):
 
 
 # --------------------------------------------------------------------------- reading
-def _sha256(path: Path) -> str:
+def sha256_file(path: Path) -> str:
+    """SHA-256 of a file's bytes, hex (the digest every manifest records)."""
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
@@ -594,7 +595,7 @@ def _scan_index(
         samples, tr, q, out_sr = _process(
             native, fs, sr=sr, trim=trim, qc=qc, slot_duration=slot_duration
         )
-        sha = _sha256(path)
+        sha = sha256_file(path)
         meta = {k: v for k, v in row.items() if k not in ("label", "file")}
         tokens.append(
             Token(id=name, label=row["label"], file=path, samples=samples, sr=out_sr, trim=tr,
@@ -766,7 +767,7 @@ def load_textgrid(
     mono = _downmix(native)
     n_native = mono.size
     rec_name = recording.name
-    sha = _sha256(recording)
+    sha = sha256_file(recording)
     cuts = []
     for k, t0, t1, lab in intervals:
         if not lab:

@@ -15,7 +15,6 @@ that would land on such a file stops the build before anything is touched.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import os
@@ -25,6 +24,7 @@ from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import Any
 
+from .corpus import sha256_file
 from .errors import BuildError
 
 __all__ = [
@@ -73,14 +73,6 @@ def read_tsv(path: Path) -> list[dict[str, str]]:
         return []
     cols = text[0].split("\t")
     return [dict(zip(cols, ln.split("\t"))) for ln in text[1:] if ln]
-
-
-def sha256_file(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def json_dumps(obj: Any) -> str:

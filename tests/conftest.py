@@ -12,3 +12,9 @@ SEED = 20261201
 def rng() -> np.random.Generator:
     """The one seeded generator every random test draws from."""
     return np.random.default_rng(SEED)
+
+
+@pytest.fixture(autouse=True)
+def _no_user_cache(tmp_path, monkeypatch):
+    """Never touch the real user cache (WORLD analyses), whatever a test forgets to pass."""
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))

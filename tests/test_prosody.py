@@ -25,10 +25,6 @@ from stimforge.retime import process_tokens
 SEED = 1202  # the one seed of this module's random signals
 
 
-@pytest.fixture(autouse=True)
-def _no_user_cache(tmp_path, monkeypatch):
-    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
-
 
 @dataclass(frozen=True)
 class Tok:

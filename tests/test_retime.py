@@ -34,11 +34,6 @@ from stimforge.timing import slot_length
 SEED = 1201  # the one seed of this module's random signals
 
 
-@pytest.fixture(autouse=True)
-def _no_user_cache(tmp_path, monkeypatch):
-    """Never touch the real user cache, whatever a test forgets to pass."""
-    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
-
 
 @pytest.fixture
 def noise_rng() -> np.random.Generator:
