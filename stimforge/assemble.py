@@ -16,7 +16,22 @@ import numpy as np
 from .recipe import HierarchySpec, RateTable
 from .timing import seconds_to_samples, unit_start
 
-__all__ = ["trial_layout", "assemble_trial", "unit_rows"]
+__all__ = ["trial_layout", "assemble_trial", "unit_rows", "fit_to_slot"]
+
+
+def fit_to_slot(token: np.ndarray, n_samples: int) -> np.ndarray:
+    """A processed token placed in a slot of ``n_samples``: zeros appended at its end.
+
+    When ``T * fs`` is not whole, slots are ``floor(T*fs)`` or ``ceil(T*fs)`` samples long and
+    the two lengths alternate with position (at 22.05 kHz and 250 ms, even slots are 5513 and
+    odd slots 5512 samples).  So that this cannot become a cue, every token is rendered once,
+    at the shorter length, and a longer slot gets one trailing zero sample: a token sounds the
+    same in every slot, and its onset is on the grid.
+    """
+    extra = int(n_samples) - token.size
+    if extra < 0 or extra > 1:
+        raise ValueError(f"token of {token.size} samples cannot fill a slot of {n_samples}")
+    return np.concatenate([token, np.zeros(extra)]) if extra else token
 
 
 def trial_layout(rates: RateTable) -> tuple[int, np.ndarray, int]:
@@ -48,7 +63,9 @@ def assemble_trial(
     units : sequence of (token_id, reversed)
         One entry per unit of the trial, lead-in first.
     get : callable (token_id, n_samples) -> ndarray
-        Returns the processed token of exactly ``n_samples`` samples.
+        Returns the processed token for a slot of ``n_samples``: exactly that long, or one
+        sample shorter (it is then reversed if asked and given a trailing zero, see
+        :func:`fit_to_slot`).
     rates : RateTable
         Grid, sample rate and silences.
 
@@ -63,9 +80,9 @@ def assemble_trial(
     for k, (token_id, rev) in enumerate(units):
         a, b = int(starts[k]), int(starts[k + 1])
         seg = np.asarray(get(token_id, b - a))
-        if seg.shape != (b - a,):
+        if seg.ndim != 1 or seg.size not in (b - a, b - a - 1):
             raise ValueError(f"token {token_id!r}: processed length {seg.shape} != slot {b - a}")
-        out[a:b] = seg[::-1] if rev else seg
+        out[a:b] = fit_to_slot(seg[::-1] if rev else seg, b - a)
     return out
 
 

@@ -224,10 +224,11 @@ def build(
         target = recipe.pitch.target_hz
         if target is None and recipe.pitch.policy != "keep":
             target = corpus.median_f0()
+        base_n = rates.slot_lengths[0]  # rendered once at the shorter slot (see fit_to_slot)
         processed = process_tokens(
             tokens,
             sr=sr,
-            lengths=list(rates.slot_lengths),
+            lengths=[base_n],
             retime=recipe.retime,
             pitch=recipe.pitch,
             level=recipe.level,
@@ -250,7 +251,9 @@ def build(
         for plan in tqdm(design.trials, desc="assembling", unit="trial", disable=not progress):
             stim_file = f"stimuli/{plan.stem}.wav"
             x = assemble_trial(
-                [(u.token_id, u.reversed) for u in plan.units], get=processed.get, rates=rates
+                [(u.token_id, u.reversed) for u in plan.units],
+                get=lambda tid, n: processed.get(tid, base_n),
+                rates=rates,
             )
             if np.max(np.abs(x)) > 1.0:
                 raise BuildError(f"{stim_file}: a sample exceeds full scale; this is a bug")

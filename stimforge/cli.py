@@ -10,6 +10,7 @@ import argparse
 import importlib
 import logging
 import sys
+import warnings
 
 from . import __version__
 from .errors import StimforgeError
@@ -43,9 +44,15 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    """Warnings from stimforge read as one plain line on stderr, without Python source lines."""
+    print(f"warning: {message}", file=file or sys.stderr)
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    warnings.showwarning = _show_warning
     logging.basicConfig(
         level=logging.DEBUG if args.verbose else logging.INFO,
         format="%(levelname)s: %(message)s",

@@ -245,7 +245,7 @@ def sha256_file(path: Path) -> str:
     return h.hexdigest()
 
 
-def _wav_promised_frames(path: Path) -> int | None:
+def wav_header_frames(path: Path) -> int | None:
     """Frame count promised by a WAV/RIFX/RF64 header's data chunk, or None if not a WAV
     (or the header does not say, e.g. a streaming writer's 0 / 0xFFFFFFFF size)."""
     try:
@@ -302,7 +302,7 @@ def _read_native(path: Path) -> tuple[np.ndarray, int]:
         data, fs = sf.read(str(path), dtype="float64", always_2d=True)
     except (sf.LibsndfileError, RuntimeError) as exc:
         raise _FileProblem(f"truncated or corrupt audio data (libsndfile: {exc})") from None
-    promised = _wav_promised_frames(path)
+    promised = wav_header_frames(path)
     if promised is None:
         promised = int(info.frames) if info.frames and info.frames > 0 else None
     if promised is not None and data.shape[0] < promised:

@@ -126,8 +126,49 @@ def prepare_output(out: Path, *, overwrite: bool) -> Path:
             f"output folder {out} is not empty; choose a new --out, or pass --overwrite to replace "
             "the files an earlier stimforge build wrote there (other files are never touched)"
         )
+    if out.is_dir() and overwrite:
+        blocked = _blocking_files(out)
+        if blocked:
+            raise BuildError(_blocked_message(out, blocked))
     out.parent.mkdir(parents=True, exist_ok=True)
-    return Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes it private; a build folder is for the lab
+    return tmp
+
+
+# Paths a build writes: a file of someone else's there stops --overwrite before any work.
+_RESERVED_TOP = {MANIFEST, LOG, "trials.tsv", "units.tsv", "summary.txt"}
+_RESERVED_DIRS = {"stimuli", "check"}
+
+
+def _replaceable(out: Path) -> set[str]:
+    """Files an earlier build wrote in ``out`` and that are unchanged since."""
+    return {
+        rel for rel, digest in _previous_outputs(out).items()
+        if (out / rel).is_file() and sha256_file(out / rel) == digest
+    }
+
+
+def _blocking_files(out: Path, new_files: Iterable[str] | None = None) -> list[str]:
+    """Files that a build would land on but that stimforge did not write (or were changed)."""
+    ours = _replaceable(out)
+    if new_files is None:  # before the build: every path a build may write
+        present = (p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file())
+        new_files = [
+            rel for rel in present
+            if rel in _RESERVED_TOP or rel.split("/", 1)[0] in _RESERVED_DIRS
+        ]
+    return sorted(rel for rel in new_files if (out / rel).exists() and rel not in ours)
+
+
+def _blocked_message(out: Path, blocked: list[str]) -> str:
+    shown = ", ".join(blocked[:5]) + (" ..." if len(blocked) > 5 else "")
+    return (
+        f"--overwrite: {len(blocked)} file(s) in {out} were not written by stimforge (or were "
+        f"changed since): {shown}; move them away or choose another --out. Nothing was changed."
+    )
 
 
 def commit_output(tmp: Path, out: Path, *, overwrite: bool, keep: Iterable[str] = ()) -> None:
@@ -141,17 +182,10 @@ def commit_output(tmp: Path, out: Path, *, overwrite: bool, keep: Iterable[str] 
         return
     if not overwrite:  # checked before, but the folder may have filled meanwhile
         raise BuildError(f"output folder {out} is not empty and --overwrite was not given")
-    ours = _previous_outputs(out)
-    replaceable = {
-        rel for rel, digest in ours.items() if (out / rel).is_file() and sha256_file(out / rel) == digest
-    }
-    blocked = [rel for rel in new_files if (out / rel).exists() and rel not in replaceable]
-    if blocked:
-        shown = ", ".join(blocked[:5]) + (" ..." if len(blocked) > 5 else "")
-        raise BuildError(
-            f"--overwrite: {len(blocked)} file(s) in {out} were not written by stimforge (or were "
-            f"changed since): {shown}; move them away or choose another --out. Nothing was changed."
-        )
+    replaceable = _replaceable(out)
+    blocked = _blocking_files(out, new_files)
+    if blocked:  # checked before the build too; the folder may have changed meanwhile
+        raise BuildError(_blocked_message(out, blocked))
     for rel in sorted(replaceable):
         (out / rel).unlink()
     # the manifest goes last: a folder whose manifest is new holds a whole new build

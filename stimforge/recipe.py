@@ -47,6 +47,14 @@ __all__ = [
 ]
 
 
+class _At(ValueError):
+    """A cross-field rule broken at a named field (``loc``), so errors can show its YAML line."""
+
+    def __init__(self, loc: tuple, message: str) -> None:
+        super().__init__(message)
+        self.loc = tuple(loc)
+
+
 class RateWarning(UserWarning):
     """Two tagged rates lie so close that their spectral bins can hardly be told apart."""
 
@@ -371,36 +379,32 @@ class Recipe(_Model):
         names = [c.name for c in self.conditions]
         dup = sorted({n for n in names if names.count(n) > 1})
         if dup:
-            raise ValueError(f"condition names must be unique; repeated: {', '.join(dup)}")
+            raise _At(("conditions",), f"condition names must be unique; repeated: {', '.join(dup)}")
         levels = self.hierarchy.names
         for i, c in enumerate(self.conditions):
             if c.kind == "scramble":
                 if c.level is None:
-                    raise ValueError(
-                        f"conditions[{i}] ({c.name}): kind 'scramble' needs 'level', one of "
-                        f"{levels[:-1]}"
-                    )
+                    raise _At(("conditions", i), f"condition {c.name!r}: kind 'scramble' needs "
+                              f"'level', one of {levels[:-1]}")
                 if c.level not in levels[:-1]:
                     hint = _did_you_mean(c.level, levels)
-                    raise ValueError(
-                        f"conditions[{i}] ({c.name}): level {c.level!r} must be one of "
-                        f"{levels[:-1]} (the top level cannot be scrambled){hint}"
-                    )
+                    raise _At(("conditions", i, "level"), f"condition {c.name!r}: level "
+                              f"{c.level!r} must be one of {levels[:-1]} (the top level cannot be "
+                              f"scrambled){hint}")
             elif c.level is not None:
-                raise ValueError(f"conditions[{i}] ({c.name}): 'level' only goes with 'scramble'")
+                raise _At(("conditions", i, "level"),
+                          f"condition {c.name!r}: 'level' only goes with 'scramble'")
         if self.repeat is not None:
             for n in self.repeat.conditions:
                 if n not in names:
-                    raise ValueError(
-                        f"repeat.conditions: {n!r} is not a condition{_did_you_mean(n, names)}"
-                    )
+                    raise _At(("repeat", "conditions"),
+                              f"{n!r} is not a condition{_did_you_mean(n, names)}")
         if self.material.generate is not None and self.material.generate.mode == "words":
             wl = len(self.material.generate.words[0])
             if wl != self.hierarchy.levels[0].size:
-                raise ValueError(
-                    f"material.generate.words have {wl} units each but level "
-                    f"{self.hierarchy.levels[0].name!r} has size {self.hierarchy.levels[0].size}"
-                )
+                raise _At(("material", "generate", "words"),
+                          f"the words have {wl} units each but level "
+                          f"{self.hierarchy.levels[0].name!r} has size {self.hierarchy.levels[0].size}")
         # Integer-cycle rule, checked here so every entry point sees it.
         self.rates()
         return self
@@ -421,8 +425,9 @@ class Recipe(_Model):
         if n.denominator != 1 or n < 1:
             lo = max(1, math.floor(n))
             hi = lo + 1 if lo >= n else math.ceil(n)
-            raise ValueError(
-                f"trials.duration {self.trials.duration} s is not a whole number of cycles of the "
+            raise _At(
+                ("trials", "duration"),
+                f"{self.trials.duration} s is not a whole number of cycles of the "
                 f"slowest level {self.hierarchy.levels[-1].name!r} ({float(top):g} s); nearest "
                 f"valid lengths: {float(lo * top):g} s or {float(hi * top):g} s"
             )
@@ -728,6 +733,10 @@ def _format_errors(exc: ValidationError, *, source: str, lines: dict[tuple, int]
         loc = tuple(p for p in err["loc"] if not (isinstance(p, str) and p.startswith("function-")))
         path = ".".join(f"[{p}]" if isinstance(p, int) else str(p) for p in loc).replace(".[", "[")
         path = path or "(top level)"
+        rule = (err.get("ctx") or {}).get("error")
+        if isinstance(rule, _At):  # a cross-field rule names the field it is about
+            loc = tuple(loc) + rule.loc
+            path = ".".join(f"[{p}]" if isinstance(p, int) else str(p) for p in loc).replace(".[", "[")
         line = lines.get(loc + ("__key__",)) or lines.get(loc)
         if line is None:
             for cut in range(len(loc) - 1, -1, -1):
@@ -750,6 +759,9 @@ def _format_errors(exc: ValidationError, *, source: str, lines: dict[tuple, int]
                 msg = msg[len("Value error, ") :]
             if "input" in err and etype != "model_type" and not isinstance(err["input"], dict):
                 msg += f" (got {err['input']!r})"
+            if etype == "string_type" and isinstance(err.get("input"), bool):
+                msg += (": YAML reads a bare yes/no/on/off/true/false as a boolean; quote the "
+                        "label, e.g. 'no'")
         msgs.append(f"{where}: {path}: {msg}")
     return "\n".join(msgs)
 

@@ -414,13 +414,21 @@ def world_analysis(
 
 
 def world_output_frames(n_samples: int, *, sr: int, frame_period: float) -> int:
-    """Smallest frame count M with ``int(M * frame_period * sr / 1000) >= n_samples``.
+    """Smallest frame count M whose last frame lies at or beyond the last output sample.
 
-    ``pyworld.synthesize`` returns ``int(M * frame_period * sr / 1000)`` samples for M frames.
+    Output frame ``j`` sits at ``j * frame_period`` ms, so M frames must satisfy
+    ``(M - 1) * frame_period * sr / 1000 >= n_samples - 1``: the frames then span the whole
+    slot, and the token's end is synthesised whatever the slot length (with one frame fewer,
+    the last few ms of the token would never be rendered, and a slot one sample longer could
+    get one frame more of the token than its neighbour).  ``pyworld.synthesize`` returns
+    ``int(M * frame_period * sr / 1000)`` samples for M frames, which is then >= n_samples.
     """
-    m = max(2, int(math.ceil(n_samples * 1000.0 / (frame_period * sr))))
-    while int(m * frame_period * sr / 1000) < n_samples:
+    hop = frame_period * sr / 1000.0
+    m = max(2, int(math.ceil((n_samples - 1) / hop)) + 1)
+    while (m - 1) * hop < n_samples - 1:
         m += 1
+    while m > 2 and (m - 2) * hop >= n_samples - 1:
+        m -= 1
     return m
 
 

@@ -300,6 +300,12 @@ def _probe_wav(path: Path) -> tuple[int, int]:
         raise CheckInputError(f"{path}: cannot be read as audio ({exc}); give a WAV file") from exc
     if info.frames <= 0:
         raise CheckInputError(f"{path}: the file holds no samples; replace it")
+    from .corpus import wav_header_frames
+
+    promised = wav_header_frames(path)  # libsndfile reads a cut WAV silently short
+    if promised is not None and promised > info.frames:
+        raise CheckInputError(f"{path}: truncated: the header promises {promised} frames, the "
+                              f"file holds {info.frames}; re-export it")
     return int(info.frames), int(info.samplerate)
 
 
@@ -455,14 +461,22 @@ def load_files(paths: Sequence[str | Path], *, unit_duration: float,
     top_units = int(np.prod([s for _, s in lv]))
     lens = []
     sr0 = None
-    for p in paths:
-        n_frames, sr = _probe_wav(Path(p))
+    problems = []
+    for p in paths:  # every file is probed before any error: one bad file hides no other
+        try:
+            n_frames, sr = _probe_wav(Path(p))
+        except CheckInputError as exc:
+            problems.append(str(exc))
+            continue
         if sr0 is None:
             sr0 = sr
         elif sr != sr0:
-            raise CheckInputError(f"{p}: sample rate {sr} Hz, {paths[0]} has {sr0} Hz; resample "
-                                  "to one rate first")
+            problems.append(f"{p}: sample rate {sr} Hz, {paths[0]} has {sr0} Hz; resample "
+                            "to one rate first")
         lens.append(n_frames)
+    if problems:
+        head = f"{len(problems)} of {len(paths)} file(s) cannot be checked:\n  " if len(problems) > 1 else ""
+        raise CheckInputError(head + "\n  ".join(problems))
     assert sr0 is not None
     off = _sample(offset, sr0)
     shortest = int(np.argmin(lens))

@@ -181,6 +181,8 @@ class CheckReport:
         d = self.design
         rates = ", ".join(f"{lv['name']} {lv['rate']:g} Hz" for lv in d["levels"])
         where = (self.location or d["source"]) if show_location else d["source"]
+        if where == "." and d["mode"] == "build":
+            where = "this build folder"
         lines.append(f"acoustic check of {where} ({d['mode']}): {rates}; window "
                      f"{d['window']:g} s, resolution {d['resolution']:.4g} Hz")
         hdr = f"{'condition':<12}{'level':<10}{'rate (Hz)':>10}  {'measure':<32}{'value':>10}{'p':>10}{'p_holm':>10}  verdict"

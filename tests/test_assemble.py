@@ -8,7 +8,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from stimforge.assemble import assemble_trial, trial_layout, unit_rows
+from stimforge.assemble import assemble_trial, fit_to_slot, trial_layout, unit_rows
 from stimforge.recipe import HierarchySpec, RateWarning, rate_table
 
 
@@ -36,7 +36,7 @@ def test_an_hour_without_drift(sr):
 def test_placement_and_reversal():
     rt = _rates(22050, 1, sb=0.1, sa=0.2)
     lead, starts, total = trial_layout(rt)
-    assert lead == 2205 and total == 2205 + 22050 + 4410
+    assert lead == 2205 and total == 2205 + 22050 + 4410  # 0.1 s, 1 s, 0.2 s at 22.05 kHz (calc)
 
     def get(token_id, n):
         return np.linspace(0.1, 0.2, n) * (1 + int(token_id))
@@ -53,6 +53,28 @@ def test_placement_and_reversal():
         assemble_trial(units[:3], get=get, rates=rt)
     with pytest.raises(ValueError, match="processed length"):
         assemble_trial(units, get=lambda t, n: np.zeros(n + 1), rates=rt)
+    with pytest.raises(ValueError, match="processed length"):
+        assemble_trial(units, get=lambda t, n: np.zeros(n - 2), rates=rt)
+
+
+def test_one_rendering_for_both_slot_lengths():
+    """250 ms at 22.05 kHz: slots of 5513 and 5512 samples alternate with position (calc).
+    A token rendered once at 5512 sounds the same in both: a 5513 slot gets a trailing zero,
+    and a reversed token is reversed before that, so its onset is on the grid too."""
+    rt = _rates(22050, 1)
+    _, starts, _ = trial_layout(rt)
+    assert list(np.diff(starts)[:4]) == [5513, 5512, 5513, 5512]
+    tok = np.sin(np.linspace(0, np.pi, 5512)) + 0.1  # nonzero at both ends, to see placement
+    x = assemble_trial([("a", False), ("a", False), ("a", True), ("a", True)],
+                       get=lambda t, n: tok, rates=rt)
+    np.testing.assert_array_equal(x[starts[0]:starts[0] + 5512], tok)
+    np.testing.assert_array_equal(x[starts[1]:starts[1] + 5512], tok)
+    assert x[starts[1] - 1] == 0.0  # the 5513 slot's trailing zero
+    np.testing.assert_array_equal(x[starts[2]:starts[2] + 5512], tok[::-1])
+    np.testing.assert_array_equal(x[starts[3]:starts[3] + 5512], tok[::-1])
+    assert np.array_equal(fit_to_slot(tok, 5513), np.r_[tok, 0.0])
+    with pytest.raises(ValueError, match="cannot fill a slot"):
+        fit_to_slot(tok, 5514)
 
 
 def test_unit_rows_positions():

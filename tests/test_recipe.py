@@ -236,3 +236,26 @@ def test_template_loads_without_warnings(tmp_path):
         warnings.simplefilter("error")
         load_recipe(p)
     assert Path(p).exists()
+
+
+def test_cross_field_errors_name_the_field_and_its_line(tmp_path):
+    text = TEMPLATE.replace("  groups_per_trial: 10       # top-level groups analysed per trial",
+                            "  duration: 10.5")
+    p = tmp_path / "r.yaml"
+    p.write_text(text)
+    lineno = next(i for i, ln in enumerate(text.splitlines(), 1) if "duration: 10.5" in ln)
+    with pytest.raises(RecipeError) as info:
+        load_recipe(p)
+    assert f"{p}:{lineno}: trials.duration: 10.5 s is not a whole number" in str(info.value)
+    text = TEMPLATE.replace("level: syllable}   # random", "level: sylable}   # random")
+    p.write_text(text)
+    lineno = next(i for i, ln in enumerate(text.splitlines(), 1) if "sylable}" in ln)
+    with pytest.raises(RecipeError, match=rf":{lineno}: conditions\[1\]\.level: .*did you mean"):
+        load_recipe(p)
+
+
+def test_yaml_boolean_label_gets_a_quoting_hint():
+    data = _with(material__text=None,
+                 material__generate={"mode": "words", "words": [["ka", False]]})
+    with pytest.raises(RecipeError, match=r"words\[0\]\[1\].*quote the label, e\.g\. 'no'"):
+        recipe_from_dict(data)

@@ -518,12 +518,21 @@ def small(tmp_path_factory):
     sf.write(root / "long.wav", np.concatenate([trials[0], trials[1]]), SR)
     sf.write(root / "rate8k.wav", trials[0][::2], 8000)
     (root / "nobuild").mkdir()
+    whole = Path(paths[0]).read_bytes()
+    (root / "cut.wav").write_bytes(whole[: len(whole) // 2])  # header still promises it all
     return root, paths
 
 
 BAD = [
     (lambda r, p: [str(r / "missing.wav"), str(p[0]), "--unit-duration", "0.25", "--level",
-                   "line=4"], r"missing.wav: file not found"),
+                   "line=4"], r"not found: \S*missing.wav"),
+    (lambda r, p: [str(r / "no_such_build")], r"not found: \S*no_such_build"),
+    (lambda r, p: [str(r / "cut.wav"), str(p[0]), "--unit-duration", "0.25", "--level",
+                   "line=4"], r"cut.wav: truncated: the header promises \d+ frames"),
+    # every bad file is named at once, not only the first
+    (lambda r, p: [str(r / "garbage.wav"), str(r / "cut.wav"), str(p[0]), "--unit-duration",
+                   "0.25", "--level", "line=4"],
+     r"2 of 3 file\(s\) cannot be checked:(.|\n)*garbage.wav(.|\n)*cut.wav: truncated"),
     (lambda r, p: [str(r / "garbage.wav"), str(p[0]), "--unit-duration", "0.25", "--level",
                    "line=4"], r"garbage.wav: cannot be read as audio"),
     (lambda r, p: [*map(str, p), "--unit-duration", "5", "--level", "line=4"],

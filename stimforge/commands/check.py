@@ -57,6 +57,10 @@ def run(args) -> int:
     from ..verify_report import CAUTION
 
     inputs = list(args.inputs)
+    missing = [p for p in inputs if not p.exists()]
+    if missing:
+        raise CheckInputError("not found: " + ", ".join(map(str, missing))
+                              + "; give one build folder or existing WAV files")
     common = dict(alpha=args.alpha, sensitivity=not args.no_sensitivity,
                   progress=not args.quiet)
     if len(inputs) == 1 and inputs[0].is_dir():
