@@ -479,7 +479,7 @@ def test_build_folder_truncated_file(tmp_path):
     data = f.read_bytes()
     f.write_bytes(data[: len(data) // 2])  # libsndfile then reads a short file silently
     with pytest.raises(CheckInputError,
-                       match=r"intact_002.wav: 5.500 s long; the grid needs 10.500 s \(file trunc"):
+                       match=r"intact_002.wav: truncated: the header promises \d+ frames"):
         V.check_build(root, sensitivity=False, progress=False)
 
 
