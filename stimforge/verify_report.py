@@ -61,6 +61,11 @@ _FEATURE_TEXT = {
 }
 
 
+# Half of the smallest y-span of the per-position plots, per feature (in its unit).
+_MIN_HALF_SPAN = {"rms_db": 0.5, "active_ms": 5.0, "f0_st": 0.5, "centroid_hz": 50.0,
+                  "rise_ms": 5.0}
+
+
 def _clean(obj: Any) -> Any:
     if isinstance(obj, dict):
         return {str(k): _clean(v) for k, v in obj.items()}
@@ -352,13 +357,20 @@ class CheckReport:
                                else np.nan for q in range(per // below)]
                         ax.plot(np.arange(1, len(med) + 1), med, "o-", label=c)
                     ax.set_title(f"{FEATURE_LABEL[fname]} by position in {lv['name']}", fontsize=8)
+                    # never zoom in past a span a listener could care about: a 0.01 dB spread
+                    # drawn full height looks like a cue and is not one
+                    lo, hi = ax.get_ylim()
+                    half = max((hi - lo) / 2, _MIN_HALF_SPAN[fname])
+                    mid = (lo + hi) / 2
+                    ax.set_ylim(mid - half, mid + half)
                     ax.set_xticks(np.arange(1, per // below + 1))
                     ax.ticklabel_format(axis="y", useOffset=False)
                     ax.set_ylabel(unit, fontsize=8)
                     ax.tick_params(labelsize=7)
                 axes[0, li].legend(fontsize=7)
             emit(fig, "Per-position features: median over units at each position of the "
-                      "level (F0 in semitones re 100 Hz).")
+                      "level (F0 in semitones re 100 Hz). Each panel spans at least 1 dB, 10 ms, "
+                      "1 semitone or 100 Hz, so that differences too small to matter look flat.")
         joins = self._plots.get("joins", {})
         if joins:
             fig, ax = plt.subplots(figsize=(7, 3))
