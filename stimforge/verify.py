@@ -968,7 +968,7 @@ def _measure_all(design: Design, trials: list[Trial], *, progress: bool) -> SetD
 
 
 def _run(design: Design, trials: list[Trial], *, alpha: float, sensitivity_on: bool,
-         progress: bool, sensitivity_level: int = 0):
+         progress: bool, sensitivity_level: int | None = None):
     if not 0 < alpha < 0.5:
         raise CheckInputError(f"alpha must be in (0, 0.5), got {alpha!r}")
     t0 = time.perf_counter()
@@ -1001,7 +1001,9 @@ def _run(design: Design, trials: list[Trial], *, alpha: float, sensitivity_on: b
     t2 = time.perf_counter()
     sens = None
     if sensitivity_on:
-        sens = sensitivity(data, alpha=alpha, level_index=sensitivity_level)
+        levels = (range(len(design.levels)) if sensitivity_level is None
+                  else [sensitivity_level])
+        sens = [row for li in levels for row in sensitivity(data, alpha=alpha, level_index=li)]
     t3 = time.perf_counter()
     feats_plot = {c: data.feats(c) for c in data.conditions}
     audio_s = sum(t.n_frames for t in trials) / design.sr

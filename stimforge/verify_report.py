@@ -156,7 +156,7 @@ class CheckReport:
                 txt = f"a {s['level']}-{pos} pitch step {size}"
             parts.append(txt)
         env = [f"{s['envelope_only']:.2g} {s['unit']}" + (" or less" if s.get("envelope_only_at_floor") else "")
-               + (" (level step)" if s["cue"] == "level_step" else " (gap)")
+               + (f" ({s['level']} level step)" if s["cue"] == "level_step" else f" ({s['level']} gap)")
                for s in self.sensitivity if s.get("envelope_only") is not None]
         tail = f"; the envelope tests alone: {', '.join(env)}" if env else ""
         return "this set would have shown " + ", ".join(parts) + tail
