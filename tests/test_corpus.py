@@ -499,3 +499,15 @@ def test_textgrid_end_rounded_past_recording_is_clamped(tmp_path, rng):
     tg.write_text(textgrid_text([(0, 1.2, ""), (1.2, 1.5004, "ka")], 1.5004), encoding="utf-8")
     t = load_textgrid(rec, tg, "syll", sr=16000, trim=TrimSpec(threshold_db=-60)).tokens[0]
     np.testing.assert_array_equal(t.samples, mono[19200:24000])
+
+
+def test_cli_inspect_tsv_never_overwrites_a_users_file(tmp_path, capsys):
+    mine = tmp_path / "mine.tsv"
+    mine.write_text("my own notes\n")
+    assert cli.main(["inspect", str(REPO / "demo_corpus"), "--tsv", str(mine)]) == 2
+    assert "is not a table stimforge inspect wrote" in capsys.readouterr().err
+    assert mine.read_text() == "my own notes\n"
+    ours = tmp_path / "qc.tsv"
+    assert cli.main(["inspect", str(REPO / "demo_corpus"), "--tsv", str(ours)]) == 0
+    assert cli.main(["inspect", str(REPO / "demo_corpus"), "--tsv", str(ours)]) == 0  # ours: replaced
+    assert len(ours.read_text().splitlines()) == 49  # header + 48 demo tokens

@@ -580,3 +580,19 @@ def test_report_api(sets, tmp_path):
     assert "passed=True" in repr(rep)
     p = rep.write_json(tmp_path / "r.json")
     assert json.loads(p.read_text())["schema_version"] == 1
+
+
+def test_cli_never_overwrites_a_file_that_is_not_a_report(sets, tmp_path, capsys):
+    mine = tmp_path / "notes.json"
+    mine.write_text('{"participant": 7}')
+    args = ["check", *map(str, sets["clean"]), "--unit-duration", "0.25", "--level", "line=4",
+            "--level", "pair=2", "--no-sensitivity", "--quiet", "--json", str(mine)]
+    assert cli.main(args) == 2
+    assert "is not a stimforge check report" in capsys.readouterr().err
+    assert mine.read_text() == '{"participant": 7}'
+    # an earlier report of its own it does replace
+    ours = tmp_path / "check.json"
+    assert cli.main(args[:-1] + [str(ours)]) == 0
+    first = ours.read_text()
+    assert cli.main(args[:-1] + [str(ours)]) == 0
+    assert '"schema_version"' in ours.read_text() and len(first) > 100

@@ -25,6 +25,16 @@ def _level(text: str) -> tuple[str, int]:
     return name.strip(), n
 
 
+def _is_our_report(path) -> bool:
+    """True for a file an earlier `stimforge check` wrote (JSON or HTML report)."""
+    try:
+        head = path.read_text(encoding="utf-8", errors="replace")[:4000]
+    except OSError:
+        return False
+    return ('"schema_version"' in head and '"stimforge_version"' in head) or (
+        "<title>stimforge acoustic" in head)
+
+
 def add_parser(sub) -> None:
     p = sub.add_parser(
         "check",
@@ -57,6 +67,13 @@ def run(args) -> int:
     from ..verify_report import CAUTION
 
     inputs = list(args.inputs)
+    # refuse, before the work, to write over a file that is not an earlier stimforge report
+    targets = ([args.json] if args.json else []) + (
+        [args.report / "check.html"] if args.report else [])
+    for target in targets:
+        if target.exists() and not _is_our_report(target):
+            raise CheckInputError(f"{target} exists and is not a stimforge check report; "
+                                  "choose another path (stimforge never overwrites your files)")
     missing = [p for p in inputs if not p.exists()]
     if missing:
         raise CheckInputError("not found: " + ", ".join(map(str, missing))

@@ -60,6 +60,9 @@ def run(args) -> int:
     except ValidationError as exc:
         msgs = "; ".join(f"{e['loc'][0]}: {e['msg']}" for e in exc.errors(include_url=False))
         raise CorpusError(f"bad trim option: {msgs}") from None
+    if args.tsv is not None and args.tsv.exists() and not _is_inspect_table(args.tsv):
+        raise CorpusError(f"--tsv {args.tsv} exists and is not a table stimforge inspect wrote; "
+                          "choose another path (stimforge never overwrites your files)")
     report = inspect_corpus(
         args.corpus, sr=args.sr, slot_duration=args.slot, trim=trim,
         progress=sys.stderr.isatty(),
@@ -77,3 +80,13 @@ def run(args) -> int:
             print(f"  {b.describe()}", file=sys.stderr)
         return 2
     return 0
+
+
+def _is_inspect_table(path: Path) -> bool:
+    """True for a TSV an earlier `stimforge inspect --tsv` wrote (same header)."""
+    try:
+        with open(path, encoding="utf-8", errors="replace") as fh:
+            return fh.readline().startswith("token\tlabel\tstatus\tproblem\t")
+    except OSError:
+        return False
+
