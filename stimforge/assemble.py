@@ -95,37 +95,29 @@ def unit_rows(
 ) -> list[dict[str, Any]]:
     """Rows of units.tsv for one trial: every unit of every level (lead-in included, flagged).
 
-    ``plan`` is a :class:`stimforge.design.TrialPlan`.
+    ``plan`` is a :class:`stimforge.design.TrialPlan`; the tiling is
+    :func:`stimforge.design.level_units`, to which this adds onsets and durations in seconds.
     """
+    from .design import level_units
+
     _, starts, _ = trial_layout(rates)
     sr = rates.sr
-    rows: list[dict[str, Any]] = []
-    n_units = len(plan.units)
-    names = hierarchy.names
-    for li, name in enumerate(names):
-        per = rates.rows[li].units_per_group
-        parent_per = rates.rows[li + 1].units_per_group if li + 1 < len(names) else None
-        for g in range(n_units // per):
-            first, last = g * per, (g + 1) * per
-            if parent_per is None:
-                position = g + 1
-            else:
-                position = (first % parent_per) // per + 1
-            labels = [u.label for u in plan.units[first:last]]
-            rows.append(
-                {
-                    "stim_file": stim_file,
-                    "condition": plan.condition,
-                    "trial": plan.trial,
-                    "level": name,
-                    "index": g,
-                    "position": position,
-                    "label": labels[0] if per == 1 else "-".join(labels),
-                    "onset": round(int(starts[first]) / sr, 6),
-                    "duration": round((int(starts[last]) - int(starts[first])) / sr, 6),
-                    "token": plan.units[first].token_id if per == 1 else None,
-                    "lead_in": int(first < plan.lead_in_units),
-                    "reversed": int(all(u.reversed for u in plan.units[first:last])),
-                }
-            )
-    return rows
+    return [
+        {
+            "stim_file": stim_file,
+            "condition": plan.condition,
+            "trial": plan.trial,
+            "level": u.level,
+            "index": u.index,
+            "position": u.position,
+            "label": u.label,
+            "onset": round(int(starts[u.first_unit]) / sr, 6),
+            "duration": round(
+                (int(starts[u.first_unit + u.n_units]) - int(starts[u.first_unit])) / sr, 6
+            ),
+            "token": u.token,
+            "lead_in": int(u.lead_in),
+            "reversed": int(u.reversed),
+        }
+        for u in level_units(plan, hierarchy=hierarchy)
+    ]

@@ -104,8 +104,10 @@ def _previous_outputs(out: Path) -> dict[str, str]:
     if not isinstance(man, dict) or "stimforge_version" not in man:
         return {}
     outputs = dict(man.get("outputs", {}))
-    outputs[MANIFEST] = sha256_file(mpath)  # the manifest itself is ours,
-    if (out / LOG).is_file():  # and so is the log written beside it (not hashed: timestamps)
+    # the manifest itself is ours, and so is the log beside it (its timestamps keep it out of
+    # "outputs"): both count as unchanged
+    outputs[MANIFEST] = sha256_file(mpath)
+    if (out / LOG).is_file():
         outputs[LOG] = sha256_file(out / LOG)
     return outputs
 
@@ -127,7 +129,7 @@ def prepare_output(out: Path, *, overwrite: bool) -> Path:
             "the files an earlier stimforge build wrote there (other files are never touched)"
         )
     if out.is_dir() and overwrite:
-        blocked = _blocking_files(out)
+        blocked = _blocking_files(out, _replaceable(out))
         if blocked:
             raise BuildError(_blocked_message(out, blocked))
     out.parent.mkdir(parents=True, exist_ok=True)
@@ -151,9 +153,10 @@ def _replaceable(out: Path) -> set[str]:
     }
 
 
-def _blocking_files(out: Path, new_files: Iterable[str] | None = None) -> list[str]:
-    """Files that a build would land on but that stimforge did not write (or were changed)."""
-    ours = _replaceable(out)
+def _blocking_files(
+    out: Path, ours: set[str], new_files: Iterable[str] | None = None
+) -> list[str]:
+    """Files that a build would land on but that are not in ``ours`` (see :func:`_replaceable`)."""
     if new_files is None:  # before the build: every path a build may write
         present = (p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file())
         new_files = [
@@ -171,7 +174,7 @@ def _blocked_message(out: Path, blocked: list[str]) -> str:
     )
 
 
-def commit_output(tmp: Path, out: Path, *, overwrite: bool, keep: Iterable[str] = ()) -> None:
+def commit_output(tmp: Path, out: Path, *, overwrite: bool) -> None:
     """Move the finished build from ``tmp`` to ``out`` (see the module's safety protocol)."""
     tmp, out = Path(tmp), Path(out)
     new_files = sorted(p.relative_to(tmp).as_posix() for p in tmp.rglob("*") if p.is_file())
@@ -183,7 +186,7 @@ def commit_output(tmp: Path, out: Path, *, overwrite: bool, keep: Iterable[str] 
     if not overwrite:  # checked before, but the folder may have filled meanwhile
         raise BuildError(f"output folder {out} is not empty and --overwrite was not given")
     replaceable = _replaceable(out)
-    blocked = _blocking_files(out, new_files)
+    blocked = _blocking_files(out, replaceable, new_files)
     if blocked:  # checked before the build too; the folder may have changed meanwhile
         raise BuildError(_blocked_message(out, blocked))
     for rel in sorted(replaceable):

@@ -32,7 +32,7 @@ from pydantic import (
 )
 
 from .errors import RecipeError
-from .timing import exact, round_half_up, unit_start
+from .timing import exact, round_half_up, seconds_to_samples, unit_start
 
 __all__ = [
     "Recipe",
@@ -521,8 +521,6 @@ class RateTable:
 
     @property
     def trial_samples(self) -> int:
-        from .timing import seconds_to_samples
-
         return (
             seconds_to_samples(self.silence_before, sr=self.sr)
             + unit_start(self.units_per_trial, unit_duration=float(self.rows[0].period_exact), sr=self.sr)

@@ -55,7 +55,7 @@ from scipy import signal as sps
 from . import verify_stats as vs
 from .acoustics import active_bounds, praat_f0, rms_dbfs, semitones, steepest_rise_time
 from .errors import CheckInputError
-from .timing import exact, round_half_up
+from .timing import exact, seconds_to_samples, unit_start
 from .verify_report import CheckReport
 
 __all__ = ["check_build", "check_files", "CheckReport", "broadband_envelope", "auditory_envelope",
@@ -348,7 +348,8 @@ def _num(row: dict[str, str], key: str, where: str) -> float:
 
 
 def _sample(t: float, sr: int) -> int:
-    return round_half_up(exact(round(t, 9)) * sr)
+    # the tables give seconds to 1 us: round away float noise, then the one rounding rule
+    return seconds_to_samples(round(t, 9), sr=sr)
 
 
 def load_build(build_dir: str | Path) -> tuple[Design, list[Trial]]:
@@ -419,8 +420,8 @@ def load_build(build_dir: str | Path) -> tuple[Design, list[Trial]]:
                                       f"for {f}, expected {nu}; the build folder is inconsistent")
         else:
             s0 = _sample(onset, sr)
-            starts = [s0 + round_half_up(k * exact(T) * sr) for k in range(nu)]
-        end = _sample(onset, sr) + round_half_up(nu * exact(T) * sr)
+            starts = [s0 + unit_start(k, unit_duration=T, sr=sr) for k in range(nu)]
+        end = _sample(onset, sr) + unit_start(nu, unit_duration=T, sr=sr)
         bounds = np.array(starts + [end], dtype=np.int64)
         if bounds[-1] > n_frames or bounds[0] < 0 or np.any(np.diff(bounds) <= 0):
             raise CheckInputError(f"{root / f}: {n_frames / sr:.3f} s long; the grid needs "
@@ -494,7 +495,7 @@ def load_files(paths: Sequence[str | Path], *, unit_duration: float,
                 f"trials of unequal length (by a whole {lv[-1][0]} cycle or more) would be "
                 "analysed over different spans: trim them to one length or check them separately")
     nu = n_top * top_units
-    bounds = np.array([off + round_half_up(k * exact(T) * sr0) for k in range(nu + 1)],
+    bounds = np.array([off + unit_start(k, unit_duration=T, sr=sr0) for k in range(nu + 1)],
                       dtype=np.int64)
     trials = [Trial(name=str(p), condition="all", trial=str(i + 1), path=Path(p), n_frames=n,
                     bounds=bounds, file_onset=offset) for i, (p, n) in enumerate(zip(paths, lens))]

@@ -8,11 +8,6 @@ from pathlib import Path
 def add_parser(sub) -> None:
     p = sub.add_parser("build", help="build a stimulus set from a recipe")
     p.add_argument("recipe", type=Path, help="YAML recipe")
-    add_build_options(p)
-    p.set_defaults(run=run)
-
-
-def add_build_options(p) -> None:
     p.add_argument("--out", type=Path, default=None,
                    help="build folder (default: <recipe folder>/build/<recipe name>)")
     p.add_argument("--overwrite", action="store_true",
@@ -21,6 +16,7 @@ def add_build_options(p) -> None:
     p.add_argument("--seed", type=int, default=None, help="override the recipe's seed")
     p.add_argument("--no-check", action="store_true", help="skip the acoustic check")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
+    p.set_defaults(run=run)
 
 
 def report(result) -> int:
