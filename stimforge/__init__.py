@@ -1,28 +1,53 @@
-"""stimforge: build and verify frequency-tagging speech stimuli from one declarative recipe."""
+"""stimforge: build and verify frequency-tagging speech stimuli, then analyse the recorded
+responses at the same rates, from one declarative recipe.
+
+``import stimforge`` is cheap: the stages load when first used (PEP 562), so
+``stimforge.build``, ``stimforge.check``, ``stimforge.load_recipe`` and
+``stimforge.read_build`` are reachable without importing pydantic, scipy or the audio stack
+up front.
+"""
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
+import importlib
+from typing import Any
 
-from .errors import (  # noqa: E402
+from ._version import __version__
+from .errors import (
+    AnalysisError,
     AudioInputError,
     BuildError,
     CheckInputError,
     CorpusError,
     DesignError,
+    EpochError,
+    GridError,
     RecipeError,
     RetimeError,
+    StatsError,
     StimforgeError,
 )
-from .recipe import Recipe, RateTable, load_recipe, rate_table, recipe_from_dict  # noqa: E402
+
+#: public name -> (module, attribute)
+_LAZY = {
+    "build": ("build", "build"),
+    "BuildResult": ("build", "BuildResult"),
+    "check": ("verify", "check"),
+    "check_build": ("verify", "check_build"),
+    "check_files": ("verify", "check_files"),
+    "CheckReport": ("verify_report", "CheckReport"),
+    "load_recipe": ("recipe", "load_recipe"),
+    "recipe_from_dict": ("recipe", "recipe_from_dict"),
+    "Recipe": ("recipe", "Recipe"),
+    "read_build": ("audio_io", "read_build"),
+    "RateTable": ("grid", "RateTable"),
+    "rate_table": ("grid", "rate_table"),
+    "grid_from_numbers": ("grid", "grid_from_numbers"),
+}
 
 __all__ = [
     "__version__",
-    "Recipe",
-    "RateTable",
-    "load_recipe",
-    "recipe_from_dict",
-    "rate_table",
+    *_LAZY,
     "StimforgeError",
     "RecipeError",
     "CorpusError",
@@ -31,4 +56,21 @@ __all__ = [
     "DesignError",
     "BuildError",
     "CheckInputError",
+    "GridError",
+    "StatsError",
+    "AnalysisError",
+    "EpochError",
 ]
+
+
+def __getattr__(name: str) -> Any:
+    if name in _LAZY:
+        mod, attr = _LAZY[name]
+        value = getattr(importlib.import_module(f".{mod}", __name__), attr)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'stimforge' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))

@@ -30,6 +30,22 @@ __all__ = [
     "as_signal",
 ]
 
+#: The per-unit features, their units and the transform used for the test.
+FEATURES = (
+    ("rms_db", "dB"),
+    ("active_ms", "ms"),
+    ("f0_st", "st"),
+    ("centroid_hz", "Hz"),
+    ("rise_ms", "ms"),
+)
+FEATURE_LABEL = {
+    "rms_db": "level (RMS)",
+    "active_ms": "active duration",
+    "f0_st": "median F0",
+    "centroid_hz": "spectral centroid",
+    "rise_ms": "steepest-rise latency",
+}
+
 
 def as_signal(x: np.ndarray, *, name: str = "signal") -> np.ndarray:
     """Return ``x`` as a contiguous 1-D float64 array, refusing NaN/inf and empty input."""

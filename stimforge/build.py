@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 import soundfile as sf
 
-from . import __version__
+from ._version import __version__
 from .acoustics import peak_dbfs
 from .assemble import assemble_trial, trial_layout, unit_rows
 from .errors import BuildError

@@ -123,7 +123,7 @@ class WorldAnalysis:
 
 def analysis_key(x: np.ndarray, *, sr: int, params: dict[str, Any]) -> str:
     """Cache key of a token's analysis: sha256 of samples + sr + params + stimforge version."""
-    from . import __version__
+    from ._version import __version__
 
     a = np.ascontiguousarray(x, dtype=np.float64)
     h = hashlib.sha256()
@@ -211,7 +211,7 @@ class AnalysisCache:
         except (KeyError, TypeError, ValueError) as exc:
             self._reject(path, f"incomplete metadata ({exc})")
             return None
-        from . import __version__
+        from ._version import __version__
 
         if meta.get("key") != key:
             self._reject(path, "stored key does not match its file name (stale or moved entry)")
@@ -232,7 +232,7 @@ class AnalysisCache:
         path = self.path_for(key)
         if path is None:
             return
-        from . import __version__
+        from ._version import __version__
 
         meta = {
             "key": key,

@@ -12,7 +12,7 @@ import logging
 import sys
 import warnings
 
-from . import __version__
+from ._version import __version__
 from .errors import StimforgeError
 
 COMMANDS = ["demo", "build", "check", "inspect", "tts", "rates", "schema", "init"]

@@ -49,7 +49,6 @@ import logging
 import math
 import os
 import re
-import struct
 from dataclasses import dataclass, field
 from pathlib import Path, PurePath
 from typing import Any, Iterator, Sequence
@@ -57,6 +56,8 @@ from typing import Any, Iterator, Sequence
 import numpy as np
 
 from .acoustics import active_bounds, db, peak_dbfs, praat_f0, rms_dbfs
+from .audio_io import AudioFileProblem, sha256_file
+from .audio_io import read_audio as _read_native
 from .errors import CorpusError
 from .recipe import CorpusSpec, QCSpec, TrimSpec
 from .timing import exact, round_half_up, seconds_to_samples
@@ -232,89 +233,7 @@ class BadFile:
 
 
 class _FileProblem(Exception):
-    """Internal: why one file cannot be used."""
-
-
-# --------------------------------------------------------------------------- reading
-def sha256_file(path: Path) -> str:
-    """SHA-256 of a file's bytes, hex (the digest every manifest records)."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
-
-
-def wav_header_frames(path: Path) -> int | None:
-    """Frame count promised by a WAV/RIFX/RF64 header's data chunk, or None if not a WAV
-    (or the header does not say, e.g. a streaming writer's 0 / 0xFFFFFFFF size)."""
-    try:
-        with open(path, "rb") as fh:
-            head = fh.read(12)
-            if len(head) < 12 or head[8:12] != b"WAVE" or head[:4] not in (b"RIFF", b"RIFX", b"RF64"):
-                return None
-            end = ">" if head[:4] == b"RIFX" else "<"
-            block_align = None
-            ds64_data = None
-            while True:
-                ch = fh.read(8)
-                if len(ch) < 8:
-                    return None
-                cid, size = ch[:4], struct.unpack(end + "I", ch[4:])[0]
-                if cid == b"data":
-                    if head[:4] == b"RF64" and size == 0xFFFFFFFF:
-                        size = ds64_data
-                    if not size or size == 0xFFFFFFFF or not block_align:
-                        return None
-                    return size // block_align
-                body_len = size + (size & 1)
-                if cid in (b"fmt ", b"ds64"):
-                    body = fh.read(body_len)
-                    if cid == b"fmt " and len(body) >= 14:
-                        block_align = struct.unpack(end + "H", body[12:14])[0]
-                    elif cid == b"ds64" and len(body) >= 16:
-                        ds64_data = struct.unpack("<Q", body[8:16])[0]
-                else:
-                    fh.seek(body_len, 1)
-    except OSError:
-        return None
-
-
-def _read_native(path: Path) -> tuple[np.ndarray, int]:
-    """Read every channel at the file's own rate: (frames, channels) float64, sample rate.
-
-    Raises _FileProblem with a human reason for missing, empty, non-audio or truncated files.
-    """
-    import soundfile as sf
-
-    if not path.exists():
-        raise _FileProblem("file not found")
-    if path.is_dir():
-        raise _FileProblem("is a folder, not an audio file")
-    if path.stat().st_size == 0:
-        raise _FileProblem("empty file (0 bytes)")
-    try:
-        info = sf.info(str(path))
-    except (sf.LibsndfileError, RuntimeError) as exc:
-        msg = str(exc).split(": ", 1)[-1] if ": " in str(exc) else str(exc)
-        raise _FileProblem(f"not a readable audio file (libsndfile: {msg.strip()})") from None
-    try:
-        data, fs = sf.read(str(path), dtype="float64", always_2d=True)
-    except (sf.LibsndfileError, RuntimeError) as exc:
-        raise _FileProblem(f"truncated or corrupt audio data (libsndfile: {exc})") from None
-    promised = wav_header_frames(path)
-    if promised is None:
-        promised = int(info.frames) if info.frames and info.frames > 0 else None
-    if promised is not None and data.shape[0] < promised:
-        raise _FileProblem(
-            f"truncated: the header promises {promised} frames but the file holds only "
-            f"{data.shape[0]} ({data.shape[0] / fs:.3f} of {promised / fs:.3f} s); re-export it"
-        )
-    if data.shape[0] == 0:
-        raise _FileProblem("holds no samples (0 frames)")
-    if not np.all(np.isfinite(data)):
-        raise _FileProblem("contains NaN or infinite samples")
-    return data, int(fs)
+    """Internal: why one file (other than audio, see audio_io.AudioFileProblem) cannot be used."""
 
 
 def _downmix(data: np.ndarray) -> np.ndarray:
@@ -362,7 +281,7 @@ def read_audio(path: str | Path, *, sr: int) -> np.ndarray:
     path = Path(path)
     try:
         data, fs = _read_native(path)
-    except _FileProblem as exc:
+    except (_FileProblem, AudioFileProblem) as exc:
         raise CorpusError(f"{path}: {exc}") from None
     return _resample(_downmix(data), fs, sr)
 
@@ -589,7 +508,7 @@ def _scan_index(
     for line, row, path, name in _progress(todo, total=len(todo), desc="reading", progress=progress):
         try:
             native, fs = _read_native(path)
-        except _FileProblem as exc:
+        except (_FileProblem, AudioFileProblem) as exc:
             bad.append(BadFile(file=path, reason=str(exc), row=line, name=name))
             continue
         samples, tr, q, out_sr = _process(
@@ -755,11 +674,11 @@ def load_textgrid(
     intervals: list[tuple[int, float, float, str]] = []
     try:
         native, fs = _read_native(recording)
-    except _FileProblem as exc:
+    except (_FileProblem, AudioFileProblem) as exc:
         bad.append(BadFile(file=recording, reason=str(exc), name=str(recording)))
     try:
         intervals = _read_textgrid_tier(textgrid, tier)
-    except _FileProblem as exc:
+    except (_FileProblem, AudioFileProblem) as exc:
         bad.append(BadFile(file=textgrid, reason=str(exc), name=str(textgrid)))
     if bad:
         _raise_bad(bad, source=textgrid, what="input file(s)")

@@ -38,3 +38,19 @@ class BuildError(StimforgeError, RuntimeError):
 
 class CheckInputError(StimforgeError, ValueError):
     """The acoustic check was given audio or a grid it cannot use."""
+
+
+class GridError(StimforgeError, ValueError):
+    """A rate table cannot be formed: a unit duration, level size or window that does not fit."""
+
+
+class StatsError(StimforgeError, ValueError):
+    """A statistic was given arrays it cannot use (too few trials, wrong shape or axis)."""
+
+
+class AnalysisError(StimforgeError, ValueError):
+    """Recorded responses cannot be analysed as given (epochs, rates or labels that do not fit)."""
+
+
+class EpochError(StimforgeError, ValueError):
+    """A recording cannot be cut into epochs: codes that do not match the plan, a bad window..."""

@@ -16,15 +16,13 @@ that would land on such a file stops the build before anything is touched.
 from __future__ import annotations
 
 import json
-import math
 import os
 import shutil
 import tempfile
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable
 from pathlib import Path
-from typing import Any
 
-from .corpus import sha256_file
+from .audio_io import MANIFEST, json_dumps, read_tsv, sha256_file, write_tsv
 from .errors import BuildError
 
 __all__ = [
@@ -37,61 +35,7 @@ __all__ = [
     "json_dumps",
 ]
 
-MANIFEST = "manifest.json"
 LOG = "build.log"
-
-
-def _fmt(v: Any) -> str:
-    if v is None:
-        return "n/a"
-    if isinstance(v, bool):
-        return "1" if v else "0"
-    if isinstance(v, float):
-        if math.isnan(v):
-            return "n/a"
-        if math.isinf(v):
-            return "-inf" if v < 0 else "inf"
-        return f"{v:.6f}".rstrip("0").rstrip(".") if v != int(v) or abs(v) < 1e15 else repr(v)
-    s = str(v)
-    if "\t" in s or "\n" in s:
-        raise ValueError(f"TSV value contains a tab or newline: {s!r}")
-    return s
-
-
-def write_tsv(path: Path, rows: Sequence[dict[str, Any]], columns: Sequence[str]) -> None:
-    """Write rows as a tab-separated table with a header; missing values become ``n/a``."""
-    lines = ["\t".join(columns)]
-    for r in rows:
-        lines.append("\t".join(_fmt(r.get(c)) for c in columns))
-    Path(path).write_text("\n".join(lines) + "\n", encoding="utf-8")
-
-
-def read_tsv(path: Path) -> list[dict[str, str]]:
-    """Read a TSV written by :func:`write_tsv` into a list of dicts of strings."""
-    text = Path(path).read_text(encoding="utf-8").splitlines()
-    if not text:
-        return []
-    cols = text[0].split("\t")
-    return [dict(zip(cols, ln.split("\t"))) for ln in text[1:] if ln]
-
-
-def json_dumps(obj: Any) -> str:
-    """Deterministic JSON (sorted keys, NaN -> null)."""
-
-    def clean(o: Any) -> Any:
-        if isinstance(o, float):
-            return None if not math.isfinite(o) else o
-        if isinstance(o, dict):
-            return {str(k): clean(v) for k, v in o.items()}
-        if isinstance(o, (list, tuple)):
-            return [clean(v) for v in o]
-        if isinstance(o, Path):
-            return o.as_posix()
-        if hasattr(o, "item") and callable(o.item):  # numpy scalars
-            return clean(o.item())
-        return o
-
-    return json.dumps(clean(obj), indent=2, sort_keys=True, allow_nan=False) + "\n"
 
 
 def _previous_outputs(out: Path) -> dict[str, str]:

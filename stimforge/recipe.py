@@ -14,8 +14,6 @@ import difflib
 import json
 import math
 import warnings
-from dataclasses import dataclass, field
-from fractions import Fraction
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
@@ -31,8 +29,10 @@ from pydantic import (
     model_validator,
 )
 
+from .defaults import ALPHA, ONSET_THRESHOLD_DB, TRIM_THRESHOLD_DB
 from .errors import RecipeError
-from .timing import exact, round_half_up, seconds_to_samples, unit_start
+from .grid import LevelRate, RateTable, RateWarning, rate_table
+from .timing import exact
 
 __all__ = [
     "Recipe",
@@ -53,10 +53,6 @@ class _At(ValueError):
     def __init__(self, loc: tuple, message: str) -> None:
         super().__init__(message)
         self.loc = tuple(loc)
-
-
-class RateWarning(UserWarning):
-    """Two tagged rates lie so close that their spectral bins can hardly be told apart."""
 
 
 def _resolve_path(value: Path | None, info: ValidationInfo) -> Path | None:
@@ -129,7 +125,7 @@ class HierarchySpec(_Model):
 # --------------------------------------------------------------------------- corpus
 class TrimSpec(_Model):
     threshold_db: float = Field(
-        -40.0,
+        TRIM_THRESHOLD_DB,
         lt=0,
         ge=-120,
         description="Silence threshold in dB relative to the token's own peak (absolute value of "
@@ -293,7 +289,7 @@ class RetimeSpec(_Model):
         0.1, ge=0, le=1, description="For 'steepest-rise': seconds into the slot of the rise."
     )
     onset_threshold_db: float = Field(
-        -40.0, lt=0, ge=-120,
+        ONSET_THRESHOLD_DB, lt=0, ge=-120,
         description="For 'onset': the acoustic onset is where the envelope first comes within "
         "this many dB of the token's peak.",
     )
@@ -348,7 +344,7 @@ class OutputSpec(_Model):
 
 class CheckSpec(_Model):
     run: bool = Field(True, description="Run the acoustic check at the end of the build.")
-    alpha: float = Field(0.01, gt=0, lt=0.5, description="Family-wise error rate.")
+    alpha: float = Field(ALPHA, gt=0, lt=0.5, description="Family-wise error rate.")
     sensitivity: bool = Field(True, description="Estimate the smallest detectable planted cues.")
 
 
@@ -449,221 +445,6 @@ class Recipe(_Model):
     def to_dict(self) -> dict[str, Any]:
         """The resolved recipe as plain JSON-able data (paths absolute)."""
         return json.loads(self.model_dump_json())
-
-
-# --------------------------------------------------------------------------- rate table
-@dataclass(frozen=True)
-class LevelRate:
-    """One row of the rate table."""
-
-    name: str
-    units_per_group: int
-    period: float  # seconds
-    rate: float  # Hz
-    bin: int  # FFT bin of the rate over the analysed window
-    period_exact: Fraction = field(repr=False, compare=False)
-
-
-@dataclass(frozen=True)
-class RateTable:
-    """Rates, periods and sample arithmetic derived from a hierarchy.
-
-    ``rows[0]`` is the unit; the others follow the levels upwards.  The analysed window is
-    ``n_top_groups`` top-level groups (the lead-in and silences excluded), so every rate is a
-    whole number of cycles and falls exactly on FFT bin ``rate * window``.
-    """
-
-    rows: tuple[LevelRate, ...]
-    sr: int
-    n_top_groups: int
-    lead_in: bool
-    silence_before: float
-    silence_after: float
-
-    @property
-    def unit(self) -> LevelRate:
-        return self.rows[0]
-
-    @property
-    def unit_samples(self) -> float:
-        """T * fs, possibly not whole."""
-        return float(self.rows[0].period_exact * self.sr)
-
-    @property
-    def slot_lengths(self) -> tuple[int, ...]:
-        """The distinct slot lengths in samples that the rounding rule produces."""
-        tfs = self.rows[0].period_exact * self.sr
-        return tuple(sorted({math.floor(tfs), math.ceil(tfs)}))
-
-    @property
-    def units_per_trial(self) -> int:
-        top = self.rows[-1].units_per_group
-        return top * (self.n_top_groups + (1 if self.lead_in else 0))
-
-    @property
-    def analysed_units(self) -> int:
-        return self.rows[-1].units_per_group * self.n_top_groups
-
-    @property
-    def window(self) -> float:
-        """Seconds analysed per trial (whole cycles of every rate)."""
-        return float(self.rows[0].period_exact * self.analysed_units)
-
-    @property
-    def resolution(self) -> float:
-        """Frequency resolution of the analysed window, Hz."""
-        return 1.0 / self.window
-
-    @property
-    def trial_duration(self) -> float:
-        """Whole trial file: silence + lead-in + analysed part + silence, seconds."""
-        return self.trial_samples / self.sr
-
-    @property
-    def trial_samples(self) -> int:
-        return (
-            seconds_to_samples(self.silence_before, sr=self.sr)
-            + unit_start(self.units_per_trial, unit_duration=float(self.rows[0].period_exact), sr=self.sr)
-            + seconds_to_samples(self.silence_after, sr=self.sr)
-        )
-
-    def row(self, name: str) -> LevelRate:
-        for r in self.rows:
-            if r.name == name:
-                return r
-        raise KeyError(name)
-
-    def close_pairs(self, min_bins: int = 3) -> list[tuple[str, str, int]]:
-        out = []
-        for i, a in enumerate(self.rows):
-            for b in self.rows[i + 1 :]:
-                if abs(a.bin - b.bin) < min_bins:
-                    out.append((a.name, b.name, abs(a.bin - b.bin)))
-        return out
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON layout written into manifest.json under "rate_table"."""
-        return {
-            "sample_rate": self.sr,
-            "unit_duration": float(self.rows[0].period_exact),
-            "unit_samples": self.unit_samples,
-            "slot_lengths": list(self.slot_lengths),
-            "rounding_rule": "unit k starts at sample round_half_up(k * T * fs) after the first unit",
-            "levels": [
-                {
-                    "name": r.name,
-                    "units_per_group": r.units_per_group,
-                    "period": r.period,
-                    "rate": r.rate,
-                    "bin": r.bin,
-                }
-                for r in self.rows
-            ],
-            "groups_per_trial": self.n_top_groups,
-            "lead_in": self.lead_in,
-            "units_per_trial": self.units_per_trial,
-            "analysed_units": self.analysed_units,
-            "window": self.window,
-            "resolution": self.resolution,
-            "silence_before": self.silence_before,
-            "silence_after": self.silence_after,
-            "trial_duration": self.trial_duration,
-            "trial_samples": self.trial_samples,
-        }
-
-    def format(self) -> str:
-        """A plain-text table for the terminal."""
-        lines = [
-            f"{'level':<12}{'units':>7}{'period (s)':>12}{'rate (Hz)':>11}{'FFT bin':>9}",
-        ]
-        for r in self.rows:
-            lines.append(
-                f"{r.name:<12}{r.units_per_group:>7}{r.period:>12.4f}{r.rate:>11.4f}{r.bin:>9d}"
-            )
-        tfs = self.unit_samples
-        lines.append(
-            f"sample rate {self.sr} Hz; T*fs = {tfs:g} samples per unit"
-            + ("" if float(tfs).is_integer() else f" (slots of {' or '.join(map(str, self.slot_lengths))})")
-        )
-        lines.append("rounding: unit k starts at sample round_half_up(k*T*fs) -> no drift")
-        lines.append(
-            f"analysed window {self.window:g} s ({self.n_top_groups} x {self.rows[-1].name}"
-            f"{', plus 1 lead-in' if self.lead_in else ''}); resolution {self.resolution:.4g} Hz; "
-            f"trial file {self.trial_duration:.3f} s"
-        )
-        return "\n".join(lines)
-
-
-def rate_table(
-    *,
-    unit_name: str,
-    unit_duration: float,
-    levels: list[tuple[str, int]],
-    sr: int,
-    n_top_groups: int,
-    lead_in: bool = False,
-    silence_before: float = 0.0,
-    silence_after: float = 0.0,
-) -> RateTable:
-    """Derive the rate table.
-
-    Parameters
-    ----------
-    unit_duration : float, seconds > 0
-        Slot duration of the unit.
-    levels : list of (name, size)
-        From the lowest group upwards; ``size`` counts elements of the level below.
-    sr : int, Hz
-        Output sample rate.
-    n_top_groups : int >= 1
-        Top-level groups in the analysed window.
-
-    Examples
-    --------
-    >>> t = rate_table(unit_name="syllable", unit_duration=0.25, levels=[("phrase", 2),
-    ...                ("sentence", 2)], sr=16000, n_top_groups=10)
-    >>> [r.rate for r in t.rows]
-    [4.0, 2.0, 1.0]
-    """
-    if n_top_groups < 1:
-        raise ValueError(f"n_top_groups must be >= 1, got {n_top_groups}")
-    T = exact(unit_duration)
-    n_units = 1
-    per = [(unit_name, 1)]
-    for name, size in levels:
-        n_units *= int(size)
-        per.append((name, n_units))
-    window = T * per[-1][1] * n_top_groups
-    rows = []
-    for name, k in per:
-        period = T * k
-        cycles = window / period  # whole by construction
-        rows.append(
-            LevelRate(
-                name=name,
-                units_per_group=k,
-                period=float(period),
-                rate=float(1 / period),
-                bin=int(cycles),
-                period_exact=period,
-            )
-        )
-    table = RateTable(
-        rows=tuple(rows),
-        sr=int(sr),
-        n_top_groups=int(n_top_groups),
-        lead_in=bool(lead_in),
-        silence_before=float(silence_before),
-        silence_after=float(silence_after),
-    )
-    for a, b, d in table.close_pairs():
-        warnings.warn(
-            f"rates of {a!r} and {b!r} are only {d} FFT bin(s) apart over a {table.window:g} s "
-            "window; use more groups per trial to separate them",
-            RateWarning,
-            stacklevel=2,
-        )
-    return table
 
 
 # --------------------------------------------------------------------------- loading

@@ -39,6 +39,8 @@ import numpy as np
 
 from .acoustics import active_bounds, active_mask, as_signal, peak_dbfs, steepest_rise_time
 from .cache import AnalysisCache, WorldAnalysis, analysis_key, default_cache_dir
+from .audio_io import to_jsonable
+from .defaults import ONSET_THRESHOLD_DB
 from .errors import AudioInputError, RetimeError
 from .prosody import (
     F0_CONTEXT_S,
@@ -84,7 +86,6 @@ ANALYSIS_PAD_S = 0.1
 MIN_TOKEN_S = 0.02
 #: "onset" alignment: first sample whose 5 ms envelope is within this many dB of its peak
 #: (the same default as the corpus trim threshold).
-ONSET_THRESHOLD_DB = -40.0
 #: Envelope smoothing (s) of the ``steepest-rise`` alignment.
 ALIGN_SMOOTH_S = 0.02
 #: Praat's overlap-add silently caps stretching at 3x; stimforge refuses beyond these.
@@ -97,18 +98,6 @@ _FACTOR_EPS = 1e-9
 
 
 # =========================================================================== records
-def _clean(v: Any) -> Any:
-    if isinstance(v, float) and not math.isfinite(v):
-        return None
-    if isinstance(v, (np.floating,)):
-        return _clean(float(v))
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (list, tuple)):
-        return [_clean(u) for u in v]
-    return v
-
-
 @dataclass(frozen=True)
 class TokenRecord:
     """What happened to one token (for the first slot length it was built at).
@@ -166,7 +155,7 @@ class TokenRecord:
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-able dict; NaN and infinities become ``None``."""
-        return {k: _clean(v) for k, v in asdict(self).items()}
+        return {k: to_jsonable(v) for k, v in asdict(self).items()}
 
     def __repr__(self) -> str:
         w = f", {len(self.warnings)} warning(s)" if self.warnings else ""

@@ -38,55 +38,36 @@ See ``README.md``, section "The acoustic check", for the plain-words version.
 
 from __future__ import annotations
 
-import csv
 import json
 import logging
 import math
 import time
 from dataclasses import dataclass
-from fractions import Fraction
 from pathlib import Path
 from typing import Iterable, Sequence
 
 import numpy as np
-from scipy import fft as sfft
-from scipy import signal as sps
 
-from . import verify_stats as vs
-from .acoustics import active_bounds, praat_f0, rms_dbfs, semitones, steepest_rise_time
-from .errors import CheckInputError
-from .timing import exact, seconds_to_samples, unit_start
+from . import stats as vs
+from .acoustics import (FEATURES, active_bounds, praat_f0, rms_dbfs, semitones,
+                        steepest_rise_time)
+from .audio_io import AudioFileProblem, probe_audio, read_audio, read_tsv
+from .envelopes import (AUDITORY_SR, COMPRESSION, auditory_envelope, broadband_envelope,
+                        choose_env_sr, gammatone_bank)
+from .defaults import ALPHA
+from .errors import CheckInputError, GridError
+from .grid import RateTable, grid_from_numbers
+from .timing import seconds_to_samples, unit_start
 from .verify_report import CheckReport
 
-__all__ = ["check_build", "check_files", "CheckReport", "broadband_envelope", "auditory_envelope",
+__all__ = ["check", "check_build", "check_files", "CheckReport", "broadband_envelope", "auditory_envelope",
            "gammatone_bank", "FEATURES", "AUDITORY_SR", "COMPRESSION"]
 
 log = logging.getLogger("stimforge")
 
-#: The per-unit features, their units and the transform used for the test.
-FEATURES = (
-    ("rms_db", "dB"),
-    ("active_ms", "ms"),
-    ("f0_st", "st"),
-    ("centroid_hz", "Hz"),
-    ("rise_ms", "ms"),
-)
-FEATURE_LABEL = {
-    "rms_db": "level (RMS)",
-    "active_ms": "active duration",
-    "f0_st": "median F0",
-    "centroid_hz": "spectral centroid",
-    "rise_ms": "steepest-rise latency",
-}
 #: Resolution of each feature in the position tests (dB, ms, semitones, Hz, ms).
 FEATURE_RESOLUTION = {"rms_db": 0.01, "active_ms": 0.1, "f0_st": 0.01, "centroid_hz": 1.0,
                       "rise_ms": 0.1}
-AUDITORY_SR = 16000
-AUDITORY_BAND = (180.0, 7250.0)
-AUDITORY_N_BANDS = 32
-#: Power-law compression of the narrowband envelopes (Biesmans et al. 2017, IEEE TNSRE 25:402;
-#: from memory).
-COMPRESSION = 0.6
 ENVELOPES = ("broadband", "auditory")
 MEASURES = ("evoked", "itpc", "t2circ")
 JOIN_HALF_WIDTH = 0.002  # s either side of a boundary
@@ -99,167 +80,46 @@ F0_SR = 8000  # Hz, rate at which Praat measures F0
 
 
 # ---------------------------------------------------------------------------------------------
-# Envelopes
-# ---------------------------------------------------------------------------------------------
-def _ratio(target: float, sr: float) -> tuple[int, int]:
-    fr = Fraction(target).limit_denominator(1000) / Fraction(sr).limit_denominator(1000)
-    fr = Fraction(fr).limit_denominator(100000)
-    return fr.numerator, fr.denominator
-
-
-def broadband_envelope(x: np.ndarray, *, sr: int, env_sr: float) -> np.ndarray:
-    """Broadband Hilbert envelope, low-passed and resampled to ``env_sr``.
-
-    Parameters
-    ----------
-    x : ndarray, shape (n,)
-        Waveform.
-    sr : int, Hz
-    env_sr : float, Hz
-        Output rate (``sr * up / down`` for small integers).
-
-    Returns
-    -------
-    ndarray, shape (ceil(n * env_sr / sr),)
-    """
-    x = np.asarray(x, dtype=np.float64)
-    n = x.size
-    env = np.abs(sps.hilbert(x, N=sfft.next_fast_len(n))[:n])
-    up, down = _ratio(env_sr, sr)
-    return sps.resample_poly(env, up, down, padtype="line")
-
-
-_BANKS: dict[tuple[int, int], list[np.ndarray]] = {}
-
-
-def gammatone_bank(*, sr: int = AUDITORY_SR, n_bands: int = AUDITORY_N_BANDS,
-                   band: tuple[float, float] = AUDITORY_BAND) -> tuple[np.ndarray, list[np.ndarray]]:
-    """ERB-spaced fourth-order gammatone filters as second-order sections.
-
-    Returns
-    -------
-    centres : ndarray, Hz
-    sos : list of ndarray, one (n_sections, 6) array per band
-    """
-    centres = vs.erb_space(band[0], band[1], n_bands)
-    key = (sr, n_bands)
-    if key not in _BANKS:
-        bank = []
-        for fc in centres:
-            b, a = sps.gammatone(float(fc), "iir", fs=sr)
-            sos = sps.tf2sos(b, a)
-            if np.max(np.abs(np.roots(a))) >= 1.0:  # pragma: no cover - guarded by design
-                raise CheckInputError(f"gammatone band at {fc:.0f} Hz is unstable at {sr} Hz")
-            bank.append(sos)
-        _BANKS[key] = bank
-    return centres, _BANKS[key]
-
-
-_RESP: dict[int, list[tuple[int, np.ndarray]]] = {}
-_TAPER = (50.0, 100.0)  # Hz: raised-cosine roll-off of the auditory path's low-pass
-
-
-def _band_responses(nfft: int) -> list[tuple[int, np.ndarray]]:
-    """Per band: first rfft bin and the gammatone response over the bins within -60 dB."""
-    if nfft not in _RESP:
-        if len(_RESP) > 8:
-            _RESP.clear()
-        centres, _ = gammatone_bank()
-        f = np.arange(nfft // 2 + 1) * (AUDITORY_SR / nfft)
-        out = []
-        for fc in centres:
-            b, a = sps.gammatone(float(fc), "iir", fs=AUDITORY_SR)
-            _, h = sps.freqz(b, a, worN=f, fs=AUDITORY_SR)
-            mag = np.abs(h)
-            keep = np.flatnonzero(mag >= 1e-3 * mag.max())
-            lo, hi = int(keep[0]), int(keep[-1]) + 1
-            out.append((lo, h[lo:hi]))
-        _RESP[nfft] = out
-    return _RESP[nfft]
-
-
-def auditory_envelope(x: np.ndarray, *, sr: int, env_sr: float) -> np.ndarray:
-    """Auditory envelope: gammatone bank at 16 kHz, compressed band envelopes summed.
-
-    Each band is filtered in the frequency domain (the IIR gammatone's response, bins within
-    -60 dB of its peak), its analytic signal is formed at a reduced rate (the band's width),
-    its magnitude is raised to :data:`COMPRESSION`, and the low-frequency Fourier coefficients
-    of all bands are summed and returned at ``env_sr`` through a raised-cosine low-pass
-    (50-100 Hz roll-off).  This equals Hilbert magnitudes of ``sosfilt`` outputs summed and
-    downsampled, at a fraction of the cost (checked in the tests).
-
-    Returns an array of the same length as :func:`broadband_envelope` gives for ``x``.
-    """
-    x = np.asarray(x, dtype=np.float64)
-    n_out = int(math.ceil(x.size * env_sr / sr))
-    if sr != AUDITORY_SR:
-        import soxr
-
-        y = soxr.resample(x, sr, AUDITORY_SR, quality="HQ")
-    else:
-        y = x
-    n = y.size
-    q = (Fraction(AUDITORY_SR) / Fraction(env_sr).limit_denominator(1000)).numerator
-    pad = int(0.1 * AUDITORY_SR)
-    nfft = q * sfft.next_fast_len(-(-(n + pad) // q))
-    Y = np.fft.rfft(y, nfft)
-    df = AUDITORY_SR / nfft
-    J = int(math.ceil(_TAPER[1] / df)) + 1
-    acc = np.zeros(J, dtype=np.complex128)
-    for lo, h in _band_responses(nfft):
-        B = 2.0 * Y[lo:lo + h.size] * h
-        m = sfft.next_fast_len(max(B.size, 2 * J + 2))
-        z = np.fft.ifft(B, m) * (m / nfft)
-        c = np.abs(z) ** COMPRESSION
-        acc += np.fft.fft(c)[:J] / m
-    fj = np.arange(J) * df
-    taper = np.where(fj <= _TAPER[0], 1.0,
-                     np.where(fj >= _TAPER[1], 0.0,
-                              0.5 + 0.5 * np.cos(np.pi * (fj - _TAPER[0]) / (_TAPER[1] - _TAPER[0]))))
-    n_env = int(round(nfft * env_sr / AUDITORY_SR))
-    env = np.fft.irfft(acc * taper * n_env, n=n_env)
-    if env.size < n_out:
-        env = np.pad(env, (0, n_out - env.size), mode="edge")
-    return env[:n_out]
-
-
-def choose_env_sr(unit_duration: float) -> float:
-    """An envelope rate in 100-250 Hz at which a unit spans a whole number of samples."""
-    T = exact(unit_duration)
-    for cand in (200, 250, 160, 150, 125, 100, 240, 120, 180):
-        if (T * cand).denominator == 1:
-            return float(cand)
-    return 200.0
-
-
-# ---------------------------------------------------------------------------------------------
 # Design and trials
 # ---------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
 class Design:
-    """The grid the check works on (internal)."""
+    """The grid the check works on (internal): a rate table and where it came from."""
 
-    unit_name: str
-    unit_duration: float
-    levels: tuple[tuple[str, int], ...]  # from the lowest group upwards
-    sr: int
-    window: float  # s analysed per trial
-    n_units: int  # analysed units per trial
+    grid: RateTable
     mode: str  # "build" | "files"
     source: str
 
     @property
+    def unit_name(self) -> str:
+        return self.grid.rows[0].name
+
+    @property
+    def unit_duration(self) -> float:
+        return self.grid.rows[0].period
+
+    @property
+    def levels(self) -> tuple[tuple[str, int], ...]:
+        return self.grid.levels
+
+    @property
+    def sr(self) -> int:
+        return self.grid.sr
+
+    @property
+    def window(self) -> float:
+        """Seconds analysed per trial."""
+        return self.grid.window
+
+    @property
+    def n_units(self) -> int:
+        """Analysed units per trial."""
+        return self.grid.analysed_units
+
+    @property
     def rates(self) -> list[tuple[str, int, float]]:
         """(name, units per group, rate Hz) from the unit upwards."""
-        out = [(self.unit_name, 1, 1.0 / self.unit_duration)]
-        k = 1
-        for name, size in self.levels:
-            k *= size
-            out.append((name, k, 1.0 / (self.unit_duration * k)))
-        return out
-
-    def bin_of(self, units_per_group: int) -> int:
-        return int(round(self.n_units / units_per_group))
+        return [(r.name, r.units_per_group, r.rate) for r in self.grid.rows]
 
 
 @dataclass
@@ -289,51 +149,29 @@ class Trial:
 
 def _probe_wav(path: Path) -> tuple[int, int]:
     """(frames, sample rate) from the header, with the check's error messages."""
-    import soundfile as sf
-
-    if not path.is_file():
-        raise CheckInputError(f"{path}: file not found; check the path (and for a build folder, "
-                              "that the build finished)")
     try:
-        info = sf.info(str(path))
-    except Exception as exc:  # soundfile raises LibsndfileError (RuntimeError) and others
-        raise CheckInputError(f"{path}: cannot be read as audio ({exc}); give a WAV file") from exc
-    if info.frames <= 0:
-        raise CheckInputError(f"{path}: the file holds no samples; replace it")
-    from .corpus import wav_header_frames
-
-    promised = wav_header_frames(path)  # libsndfile reads a cut WAV silently short
-    if promised is not None and promised > info.frames:
-        raise CheckInputError(f"{path}: truncated: the header promises {promised} frames, the "
-                              f"file holds {info.frames}; re-export it")
-    return int(info.frames), int(info.samplerate)
+        n_frames, sr, _ = probe_audio(path)
+    except AudioFileProblem as exc:
+        raise CheckInputError(f"{path}: {exc}; give a whole WAV file (for a build folder, "
+                              "check that the build finished)") from None
+    return n_frames, sr
 
 
 def _read_wav(path: Path) -> tuple[np.ndarray, int]:
-    import soundfile as sf
-
-    if not path.is_file():
-        raise CheckInputError(f"{path}: file not found; check the path (and for a build folder, "
-                              "that the build finished)")
+    """Mono float64 samples (the mean of the channels) and the sample rate."""
     try:
-        x, sr = sf.read(str(path), dtype="float64", always_2d=True)
-    except Exception as exc:  # soundfile raises LibsndfileError (RuntimeError) and others
-        raise CheckInputError(f"{path}: cannot be read as audio ({exc}); give a WAV file") from exc
-    if x.shape[0] == 0:
-        raise CheckInputError(f"{path}: the file holds no samples; replace it")
+        x, sr = read_audio(path)
+    except AudioFileProblem as exc:
+        raise CheckInputError(f"{path}: {exc}; give a whole WAV file") from None
     if x.shape[1] > 1:
         log.warning("%s: %d channels, analysed as their mean", path, x.shape[1])
-    x = x.mean(axis=1)
-    if not np.all(np.isfinite(x)):
-        raise CheckInputError(f"{path}: NaN or infinite samples; re-export the file")
-    return np.ascontiguousarray(x), int(sr)
+    return np.ascontiguousarray(x.mean(axis=1)), int(sr)
 
 
 def _read_tsv(path: Path) -> list[dict[str, str]]:
     if not path.is_file():
         raise CheckInputError(f"{path}: missing; is this a stimforge build folder?")
-    with path.open(newline="", encoding="utf-8") as fh:
-        rows = list(csv.DictReader(fh, delimiter="\t"))
+    rows = read_tsv(path)
     if not rows:
         raise CheckInputError(f"{path}: no rows")
     return rows
@@ -362,18 +200,11 @@ def load_build(build_dir: str | Path) -> tuple[Design, list[Trial]]:
         raise CheckInputError(f"{mpath}: missing; is {root} a stimforge build folder?")
     try:
         manifest = json.loads(mpath.read_text(encoding="utf-8"))
-        rt = manifest["rate_table"]
-        lv = rt["levels"]
-        sr = int(rt["sample_rate"])
-        T = float(rt["unit_duration"])
+        grid = RateTable.from_dict(manifest["rate_table"], source=str(mpath))
     except (ValueError, KeyError, TypeError) as exc:
         raise CheckInputError(f"{mpath}: no usable 'rate_table' ({exc}); rebuild the set") from exc
-    unit_name = lv[0]["name"]
-    levels = []
-    for prev, cur in zip(lv[:-1], lv[1:]):
-        size = int(cur["units_per_group"]) // int(prev["units_per_group"])
-        levels.append((cur["name"], size))
-    if not levels:
+    unit_name, sr, T = grid.rows[0].name, grid.sr, grid.rows[0].period
+    if not grid.levels:
         raise CheckInputError(f"{mpath}: the rate table has no level above the unit: "
                               "nothing to check")
     rows = _read_tsv(root / "trials.tsv")
@@ -393,7 +224,7 @@ def load_build(build_dir: str | Path) -> tuple[Design, list[Trial]]:
                 continue
             unit_rows.setdefault(r["stim_file"], []).append(
                 (int(float(r["index"])), _num(r, "onset", str(units_path))))
-    window = float(rt.get("window", 0.0))
+    window = grid.window
     trials: list[Trial] = []
     n_units = None
     for f, r in seen.items():
@@ -432,8 +263,11 @@ def load_build(build_dir: str | Path) -> tuple[Design, list[Trial]]:
     if not trials:
         raise CheckInputError(f"{root / 'trials.tsv'}: no first-hearing rows (repetition == 1)")
     assert n_units is not None
-    design = Design(unit_name=unit_name, unit_duration=T, levels=tuple(levels), sr=sr,
-                    window=n_units * T, n_units=n_units, mode="build", source=".")
+    if n_units != grid.analysed_units:
+        raise CheckInputError(f"{root / 'trials.tsv'}: {n_units} analysed units per trial, the "
+                              f"manifest's rate table says {grid.analysed_units}; the build "
+                              "folder is inconsistent: rebuild the set")
+    design = Design(grid=grid, mode="build", source=".")
     return design, trials
 
 
@@ -499,8 +333,12 @@ def load_files(paths: Sequence[str | Path], *, unit_duration: float,
                       dtype=np.int64)
     trials = [Trial(name=str(p), condition="all", trial=str(i + 1), path=Path(p), n_frames=n,
                     bounds=bounds, file_onset=offset) for i, (p, n) in enumerate(zip(paths, lens))]
-    design = Design(unit_name=unit_name, unit_duration=T, levels=tuple(lv), sr=sr0,
-                    window=nu * T, n_units=nu, mode="files",
+    try:
+        grid = grid_from_numbers(unit_duration=T, levels=lv, sr=sr0, n_top_groups=n_top,
+                                 unit_name=unit_name)
+    except GridError as exc:
+        raise CheckInputError(str(exc)) from None
+    design = Design(grid=grid, mode="files",
                     source=", ".join(str(p) for p in paths[:3]) + (" ..." if len(paths) > 3 else ""))
     return design, trials
 
@@ -611,79 +449,47 @@ def measure_trial(tr: Trial, *, design: Design, env_sr: float) -> Measured:
 # ---------------------------------------------------------------------------------------------
 # Tests on a measured set
 # ---------------------------------------------------------------------------------------------
-def target_bins(design: Design) -> list[tuple[str, int, int]]:
-    """(level name, bin, harmonic number) for every bin tested; unit-rate harmonics excluded.
-
-    A bin is assigned to the fastest level whose rate divides it, so each bin is tested once.
-    """
-    rates = design.rates
-    unit_bin = design.bin_of(1)
-    out = []
-    for j in range(1, len(rates)):
-        name, upg, _ = rates[j]
-        b = design.bin_of(upg)
-        faster = [design.bin_of(r[1]) for r in rates[:j]]
-        h = 1
-        while h * b < unit_bin:
-            kb = h * b
-            if not any(kb % fb == 0 for fb in faster):
-                out.append((name, kb, h))
-            h += 1
-    return out
-
-
-def structure_bins(design: Design, n_total: int) -> frozenset[int]:
-    top = design.bin_of(design.rates[-1][1])
-    return frozenset(range(0, n_total, top))
-
-
-def n_bins_needed(design: Design) -> int:
-    unit_bin = design.bin_of(1)
-    return int(unit_bin + max(unit_bin // 2, 3 * design.bin_of(design.rates[-1][1]) + 12) + 1)
-
-
 def spectra_of(ms: list[Measured], *, kind: str, design: Design, env_sr: float,
                envs: list[np.ndarray] | None = None) -> np.ndarray:
     """Complex spectra (n_trials, n_bins) of one envelope kind over the window."""
     X = np.stack(envs if envs is not None else [m.env[kind] for m in ms])
     X = X - X.mean(axis=1, keepdims=True)
-    return vs.dft_bins(X, sr=env_sr, window=design.window, n_bins=n_bins_needed(design))
+    return vs.dft_bins(X, sr=env_sr, window=design.window, n_bins=design.grid.n_bins_needed())
 
 
 def spectral_rows(Z: np.ndarray, *, design: Design, condition: str, kind: str) -> list[dict]:
     """Evoked, ITPC and T2circ rows (plus SNR for comparison) for one condition and envelope."""
     n_total = Z.shape[1]
-    excl = structure_bins(design, n_total)
+    excl = design.grid.structure_bins(n_total)
     ev = Z.mean(axis=0)
     rows = []
-    for level, k, h in target_bins(design):
+    for tb in design.grid.target_bins():
+        level, k, h = tb.level, tb.bin, tb.harmonic
         nb = vs.neighbour_bins(k, n_total=n_total, exclude=excl)
-        e = vs.evoked_test(ev, k, nb)
+        e = vs.evoked_test(ev, k=k, neighbours=nb)
         ray = vs.rayleigh(Z[:, k])
         t2 = vs.t2circ(Z[:, k])
-        snr = vs.snr_per_trial(Z, k, nb)
+        snr = vs.magnitude_snr_db(Z, k=k, neighbours=nb)
         freq = k / design.window
         base = {"condition": condition, "envelope": kind, "level": level, "freq": freq,
                 "bin": int(k), "harmonic": int(h), "n_trials": int(Z.shape[0]),
                 "snr_db": snr}
-        rows.append({**base, "measure": "evoked", "value": e["ratio"], "z": e["z"],
-                     "amplitude": e["amplitude"], "stat": e["F"], "p": e["p"]})
-        rows.append({**base, "measure": "itpc", "value": ray["r"], "stat": ray["z"],
-                     "p": ray["p"]})
-        rows.append({**base, "measure": "t2circ", "value": t2["T2"], "stat": t2["F"],
-                     "p": t2["p"]})
+        rows.append({**base, "measure": "evoked", "value": e.ratio, "z": e.z,
+                     "amplitude": e.amplitude, "stat": e.F, "p": e.p})
+        rows.append({**base, "measure": "itpc", "value": ray.r, "stat": ray.z, "p": ray.p})
+        rows.append({**base, "measure": "t2circ", "value": t2.T2, "stat": t2.F, "p": t2.p})
     return rows
 
 
 def unit_rate_row(Z: np.ndarray, *, design: Design, condition: str, kind: str) -> dict:
     n_total = Z.shape[1]
-    k = design.bin_of(1)
-    nb = vs.neighbour_bins(k, n_total=n_total, exclude=structure_bins(design, n_total))
-    e = vs.evoked_test(Z.mean(axis=0), k, nb)
+    k = design.grid.unit_bin
+    nb = vs.neighbour_bins(k, n_total=n_total, exclude=design.grid.structure_bins(n_total))
+    e = vs.evoked_test(Z.mean(axis=0), k=k, neighbours=nb)
     ray = vs.rayleigh(Z[:, k])
-    ok = bool(e["ratio"] >= 3.0 and ray["r"] >= 0.5)
+    ok = bool(e.ratio >= 3.0 and ray.r >= 0.5)
     return {"condition": condition, "envelope": kind, "freq": k / design.window,
-            "ratio": e["ratio"], "itpc": ray["r"], "p": e["p"], "clear": ok}
+            "ratio": e.ratio, "itpc": ray.r, "p": e.p, "clear": ok}
 
 
 def position_tables(feats: np.ndarray, *, design: Design, level_index: int) -> np.ndarray:
@@ -984,7 +790,7 @@ def _run(design: Design, trials: list[Trial], *, alpha: float, sensitivity_on: b
             ray = vs.rayleigh(Z, axis=0)
             plots[(c, kind)] = {"freq": np.arange(Z.shape[1]) / design.window,
                                 "evoked": np.abs(Z.mean(axis=0)),
-                                "mean_mag": np.abs(Z).mean(axis=0), "itpc": ray["r"]}
+                                "mean_mag": np.abs(Z).mean(axis=0), "itpc": ray.r}
         if not any(u["clear"] for u in unit_rows if u["condition"] == c):
             best = max((u for u in unit_rows if u["condition"] == c), key=lambda u: u["ratio"])
             raise CheckInputError(
@@ -1047,7 +853,7 @@ def _join_summary(data: SetData) -> dict:
             "median_db": float(np.median([t[0] for t in allj])) if allj else None}
 
 
-def check_build(build_dir: str | Path, *, alpha: float = 0.01, sensitivity: bool = True,
+def check_build(build_dir: str | Path, *, alpha: float = ALPHA, sensitivity: bool = True,
                 progress: bool = True):
     """Check a stimforge build folder for acoustic cues at its structure's rates.
 
@@ -1077,7 +883,7 @@ def check_build(build_dir: str | Path, *, alpha: float = 0.01, sensitivity: bool
 
 def check_files(paths: Sequence[str | Path], *, unit_duration: float,
                 levels: list[tuple[str, int]], offset: float = 0.0, unit_name: str = "unit",
-                alpha: float = 0.01, sensitivity: bool = True, progress: bool = True):
+                alpha: float = ALPHA, sensitivity: bool = True, progress: bool = True):
     """Check plain WAV files (one trial each) on a grid.
 
     Parameters
@@ -1099,3 +905,24 @@ def check_files(paths: Sequence[str | Path], *, unit_duration: float,
     design, trials = load_files(paths, unit_duration=unit_duration, levels=levels,
                                 offset=offset, unit_name=unit_name)
     return _run(design, trials, alpha=alpha, sensitivity_on=sensitivity, progress=progress)
+
+
+def check(source: str | Path | Sequence[str | Path], *, unit_duration: float | None = None,
+          levels: list[tuple[str, int]] | None = None, offset: float = 0.0,
+          alpha: float = ALPHA, sensitivity: bool = True, progress: bool = True):
+    """Check a build folder, or plain WAV files on a grid given by ``unit_duration``/``levels``.
+
+    ``check("build/my_set")`` is :func:`check_build`; ``check(["a.wav", "b.wav"],
+    unit_duration=0.25, levels=[("word", 2)])`` is :func:`check_files`.
+    """
+    if isinstance(source, (str, Path)) and Path(source).is_dir():
+        if unit_duration is not None or levels is not None:
+            raise CheckInputError(f"{source}: a build folder carries its own grid; do not pass "
+                                  "unit_duration or levels with it")
+        return check_build(source, alpha=alpha, sensitivity=sensitivity, progress=progress)
+    paths = [source] if isinstance(source, (str, Path)) else list(source)
+    if unit_duration is None or not levels:
+        raise CheckInputError("plain WAV files need the grid: pass unit_duration (seconds) and "
+                              "levels, e.g. levels=[('word', 2)]")
+    return check_files(paths, unit_duration=unit_duration, levels=levels, offset=offset,
+                       alpha=alpha, sensitivity=sensitivity, progress=progress)

@@ -36,13 +36,13 @@ from __future__ import annotations
 import base64
 import html
 import io
-import json
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 import numpy as np
+
+from .acoustics import FEATURE_LABEL, FEATURES
+from .audio_io import json_dumps, to_jsonable
 
 __all__ = ["CheckReport", "SCHEMA_VERSION", "CAUTION"]
 
@@ -64,23 +64,6 @@ _FEATURE_TEXT = {
 # Half of the smallest y-span of the per-position plots, per feature (in its unit).
 _MIN_HALF_SPAN = {"rms_db": 0.5, "active_ms": 5.0, "f0_st": 0.5, "centroid_hz": 50.0,
                   "rise_ms": 5.0}
-
-
-def _clean(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {str(k): _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, (np.floating, float)):
-        v = float(obj)
-        return v if math.isfinite(v) else None
-    if isinstance(obj, (np.integer,)):
-        return int(obj)
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    if isinstance(obj, np.ndarray):
-        return _clean(obj.tolist())
-    return obj
 
 
 def _fmt_p(p: float) -> str:
@@ -242,14 +225,14 @@ class CheckReport:
     # -- JSON ------------------------------------------------------------------------------
     def to_dict(self, *, timings: bool = False) -> dict:
         """The JSON layout (module docstring); wall-clock times only with ``timings=True``."""
-        from . import __version__
+        from ._version import __version__
 
         sens = None
         if self.sensitivity is not None:
             sens = [s if timings else {k: v for k, v in s.items() if k != "seconds"}
                     for s in self.sensitivity]
 
-        return _clean({
+        return to_jsonable({
             "schema_version": SCHEMA_VERSION,
             "stimforge_version": __version__,
             "verdict": {"passed": self.passed, "exit_code": self.exit_code,
@@ -271,7 +254,7 @@ class CheckReport:
         """Write :meth:`to_dict` as JSON (byte-identical for the same audio unless ``timings``)."""
         p = Path(path)
         p.parent.mkdir(parents=True, exist_ok=True)
-        p.write_text(json.dumps(self.to_dict(timings=timings), indent=2, allow_nan=False) + "\n",
+        p.write_text(json_dumps(self.to_dict(timings=timings), sort_keys=False),
                      encoding="utf-8")
         return p
 
@@ -338,7 +321,6 @@ class CheckReport:
                       "phase coherence; dotted lines mark the structure's rates.")
         feats = self._plots.get("features", {})
         if feats:
-            from .verify import FEATURES, FEATURE_LABEL
 
             conds = sorted(feats)
             levels = d["levels"][1:]

@@ -57,6 +57,24 @@ def test_two_demo_builds_are_byte_identical(demo):
     assert len(a) > 30 and a == b
 
 
+def test_demo_build_bytes_match_the_recorded_digests(demo):
+    """Refactors leave the demo's files byte-identical.
+
+    ``tests/data/demo_build_sha256.txt`` holds the digests of every file of a demo build (check
+    JSON and HTML included; build.log holds timestamps and is left out).  A change that *means*
+    to change the outputs regenerates that file in the same commit and says why
+    (``sha256sum`` over the build folder, build.log excluded).
+    """
+    base, _, _ = demo
+    recorded = {}
+    for line in (ROOT / "tests" / "data" / "demo_build_sha256.txt").read_text().splitlines():
+        digest_, name = line.split(None, 1)
+        recorded[name.strip()] = digest_
+    got = digest(base / "a")
+    changed = sorted(k for k in set(got) | set(recorded) if got.get(k) != recorded.get(k))
+    assert not changed, f"demo build files differ from the recorded digests: {changed}"
+
+
 def test_third_build_into_non_empty_folder_refused(demo, capsys):
     base, _, _ = demo
     before = {**digest(base / "a"), "build.log": (base / "a" / "build.log").read_bytes()}

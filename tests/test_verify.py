@@ -21,7 +21,8 @@ from scipy import signal as sps
 from stimforge import cli
 from stimforge import verify as V
 from stimforge.errors import CheckInputError
-from stimforge.recipe import rate_table
+from stimforge import stats as vs
+from stimforge.grid import grid_from_numbers, rate_table
 from stimforge.verify_report import CAUTION
 
 SR = 16000
@@ -166,7 +167,7 @@ def test_broadband_envelope_of_am_tone(sr):
     x = A * (1 + m * np.cos(2 * np.pi * fm * t)) * np.sin(2 * np.pi * fc * t)
     env = V.broadband_envelope(x, sr=sr, env_sr=200.0)
     assert env.size == 1600
-    X = V.vs.dft_bins(env, sr=200.0, window=win, n_bins=40)
+    X = vs.dft_bins(env, sr=200.0, window=win, n_bins=40)
     assert abs(X[16]) == pytest.approx(A * m, rel=0.01)  # bin 16 = 2 Hz over 8 s
     assert X[0].real / 2 == pytest.approx(A, rel=0.01)
     assert np.max(np.abs(np.delete(X[1:], 15))) < 0.01 * A * m  # nothing else (no leakage)
@@ -180,7 +181,7 @@ def test_auditory_envelope_of_am_tone():
     t = np.arange(int(win * sr)) / sr
     x = A * (1 + m * np.cos(2 * np.pi * fm * t)) * np.sin(2 * np.pi * fc * t)
     env = V.auditory_envelope(x, sr=sr, env_sr=200.0)
-    X = V.vs.dft_bins(env[200:1400], sr=200.0, window=6.0, n_bins=40)  # whole cycles
+    X = vs.dft_bins(env[200:1400], sr=200.0, window=6.0, n_bins=40)  # whole cycles
     th = np.linspace(0, 2 * np.pi, 4096, endpoint=False)
     c = (1 + m * np.cos(th)) ** V.COMPRESSION
     expected = 2 * np.abs(np.mean(c * np.exp(-1j * th))) / np.mean(c)
@@ -486,8 +487,10 @@ def test_build_folder_truncated_file(tmp_path):
 def test_join_position_test_ignores_differences_within_silence(rng):
     # Boundaries far below the units' own steps (here -50 vs -40 dB) are all clean: no cue.
     # Position-linked clicks above the floor (+3 dB at every line-initial boundary) are a cue.
-    d = V.Design(unit_name="syllable", unit_duration=0.25, levels=tuple(LEVELS), sr=SR,
-                 window=8.0, n_units=32, mode="files", source="t")
+    grid = grid_from_numbers(unit_duration=0.25, levels=list(LEVELS), sr=SR,
+                             n_top_groups=32 // int(np.prod([s for _, s in LEVELS])),
+                             unit_name="syllable")
+    d = V.Design(grid=grid, mode="files", source="t")
     J = -45 + rng.standard_normal((20, 32))
     J[:, ::4] -= 10.0
     assert all(r["p"] == 1.0 for r in V.join_rows(J, design=d, condition="c"))
@@ -534,7 +537,7 @@ BAD = [
                    "0.25", "--level", "line=4"],
      r"2 of 3 file\(s\) cannot be checked:(.|\n)*garbage.wav(.|\n)*cut.wav: truncated"),
     (lambda r, p: [str(r / "garbage.wav"), str(p[0]), "--unit-duration", "0.25", "--level",
-                   "line=4"], r"garbage.wav: cannot be read as audio"),
+                   "line=4"], r"garbage.wav: not a readable audio file"),
     (lambda r, p: [*map(str, p), "--unit-duration", "5", "--level", "line=4"],
      r"does not hold one line cycle"),
     (lambda r, p: [str(p[0]), str(r / "long.wav"), "--unit-duration", "0.25", "--level",

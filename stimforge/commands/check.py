@@ -12,6 +12,8 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from ..defaults import ALPHA
+
 
 def _level(text: str) -> tuple[str, int]:
     name, sep, size = text.partition("=")
@@ -53,8 +55,8 @@ def add_parser(sub) -> None:
     p.add_argument("--unit-name", default="unit", help="(files) name of the lowest unit")
     p.add_argument("--json", type=Path, metavar="PATH", help="write the JSON report here")
     p.add_argument("--report", type=Path, metavar="DIR", help="write check.html into DIR")
-    p.add_argument("--alpha", type=float, default=0.01,
-                   help="family-wise error rate, Holm-corrected (default 0.01)")
+    p.add_argument("--alpha", type=float, default=ALPHA,
+                   help=f"family-wise error rate, Holm-corrected (default {ALPHA:g})")
     p.add_argument("--no-sensitivity", action="store_true",
                    help="skip the planted-cue sensitivity estimate")
     p.add_argument("--quiet", action="store_true", help="no progress bar")

@@ -10,6 +10,8 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+from ..defaults import TRIM_THRESHOLD_DB
+
 
 def add_parser(sub) -> None:
     p = sub.add_parser(
@@ -32,7 +34,7 @@ def add_parser(sub) -> None:
     )
     p.add_argument(
         "--trim-db", type=float, default=None, metavar="DB",
-        help="trim threshold in dB below each token's peak (default -40)",
+        help=f"trim threshold in dB below each token's peak (default {TRIM_THRESHOLD_DB:g})",
     )
     p.add_argument(
         "--pad", type=float, default=None, metavar="SECONDS",

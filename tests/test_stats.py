@@ -11,8 +11,10 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from stimforge import envelopes as E
+from stimforge import stats as vs
 from stimforge import verify as V
-from stimforge import verify_stats as vs
+from stimforge.grid import grid_from_numbers
 
 
 # --------------------------------------------------------------------------------------------
@@ -25,31 +27,31 @@ from stimforge import verify_stats as vs
     [(100, 35.49), (500, 78.67), (1000, 132.64), (2000, 240.58), (4000, 456.46)],
 )
 def test_erb_values(f, expected):
-    assert vs.erb(f) == pytest.approx(expected, abs=0.01)
+    assert E.erb(f) == pytest.approx(expected, abs=0.01)
 
 
 def test_erb_space_is_equal_in_erb_number():
-    c = vs.erb_space(180.0, 7250.0, 32)
+    c = E.erb_space(180.0, 7250.0, 32)
     assert c[0] == pytest.approx(180.0) and c[-1] == pytest.approx(7250.0)
-    steps = np.diff(vs.erb_number(c))
+    steps = np.diff(E.erb_number(c))
     assert np.allclose(steps, steps[0])  # equal ERB-number spacing (definition)
     # ERB-number of 1 kHz = 21.4 log10(5.37) = 15.62 Cams (Glasberg & Moore 1990) [calc]
-    assert vs.erb_number(1000.0) == pytest.approx(15.62, abs=0.01)
+    assert E.erb_number(1000.0) == pytest.approx(15.62, abs=0.01)
 
 
 def test_gammatone_bank_centres_and_bandwidths():
-    centres, bank = V.gammatone_bank()
+    centres, bank = E.gammatone_bank()
     from scipy import signal as sps
 
     assert len(bank) == 32
     for i in (0, 8, 16, 24):
-        w, h = sps.sosfreqz(bank[i], worN=2 ** 16, fs=V.AUDITORY_SR)
+        w, h = sps.sosfreqz(bank[i], worN=2 ** 16, fs=E.AUDITORY_SR)
         m = np.abs(h)
         assert w[np.argmax(m)] == pytest.approx(centres[i], rel=0.01)
         band = w[m >= m.max() / np.sqrt(2)]
         # 3-dB bandwidth of a 4th-order gammatone = 0.887 ERB (Patterson et al. 1992 / Holdsworth
         # et al. 1988; from memory)
-        assert (band[-1] - band[0]) / vs.erb(centres[i]) == pytest.approx(0.887, rel=0.03)
+        assert (band[-1] - band[0]) / E.erb(centres[i]) == pytest.approx(0.887, rel=0.03)
 
 
 # --------------------------------------------------------------------------------------------
@@ -59,16 +61,16 @@ def test_rayleigh_zar_example():
     # Zar, Biostatistical Analysis, Example 27.2 (DOMAIN.md [src]).
     ang = np.deg2rad([66, 75, 86, 88, 88, 93, 97, 101, 118, 130])
     r = vs.rayleigh(ang)
-    assert r["r"] == pytest.approx(0.9521, abs=1e-4)
-    assert np.rad2deg(r["mean_angle"]) == pytest.approx(94.05, abs=0.01)
-    assert r["z"] == pytest.approx(9.066, abs=1e-3)
-    assert r["p"] == pytest.approx(5.3e-6, rel=0.02)
+    assert r.r == pytest.approx(0.9521, abs=1e-4)
+    assert np.rad2deg(r.mean_angle) == pytest.approx(94.05, abs=0.01)
+    assert r.z == pytest.approx(9.066, abs=1e-3)
+    assert r.p == pytest.approx(5.3e-6, rel=0.02)
 
 
 def test_rayleigh_same_from_complex_values():
     ang = np.deg2rad([66, 75, 86, 88, 88, 93, 97, 101, 118, 130])
     z = np.array([3.0, 0.5, 1.0, 2.0, 7.0, 1.0, 1.0, 0.2, 4.0, 1.0]) * np.exp(1j * ang)
-    assert vs.rayleigh(z)["r"] == pytest.approx(vs.rayleigh(ang)["r"])
+    assert vs.rayleigh(z).r == pytest.approx(vs.rayleigh(ang).r)
 
 
 def test_rayleigh_p_half_coherence():
@@ -107,16 +109,16 @@ def test_t2circ_worked_values():
     # DOMAIN.md [calc] for Victor & Mast 1991's statistic.
     z = np.array([1, 1 + 0.5j, 0.5 + 1j, 1.5 + 0.5j, 1 + 1j, 0.2 + 0.3j])
     r = vs.t2circ(z)
-    assert r["T2"] == pytest.approx(2.9132, abs=1e-4)
-    assert r["F"] == pytest.approx(17.479, abs=1e-3)
-    assert r["df"] == (2, 10)
-    assert r["p"] == pytest.approx(5.44e-4, rel=0.005)
+    assert r.T2 == pytest.approx(2.9132, abs=1e-4)
+    assert r.F == pytest.approx(17.479, abs=1e-3)
+    assert r.df == (2, 10)
+    assert r.p == pytest.approx(5.44e-4, rel=0.005)
 
 
 def test_t2circ_vectorised_matches_scalar(rng):
     Z = rng.standard_normal((12, 5)) + 1j * rng.standard_normal((12, 5)) + 0.3
-    vec = vs.t2circ(Z, axis=0)["p"]
-    assert np.allclose(vec, [vs.t2circ(Z[:, k])["p"] for k in range(5)])
+    vec = vs.t2circ(Z, axis=0).p
+    assert np.allclose(vec, [vs.t2circ(Z[:, k]).p for k in range(5)])
 
 
 # --------------------------------------------------------------------------------------------
@@ -176,10 +178,10 @@ def test_single_tests_are_calibrated(rng):
     # a binomial SE of 0.004.
     n_sim, M, K = 3000, 20, 30
     Z = rng.standard_normal((n_sim, M, K)) + 1j * rng.standard_normal((n_sim, M, K))
-    p_ray = vs.rayleigh(Z[:, :, 10], axis=1)["p"]
-    p_t2 = vs.t2circ(Z[:, :, 10], axis=1)["p"]
+    p_ray = vs.rayleigh(Z[:, :, 10], axis=1).p
+    p_t2 = vs.t2circ(Z[:, :, 10], axis=1).p
     nb = vs.neighbour_bins(10, n_total=K, exclude=frozenset())
-    p_ev = np.array([vs.evoked_test(Z[i].mean(axis=0), 10, nb)["p"] for i in range(n_sim)])
+    p_ev = np.array([vs.evoked_test(Z[i].mean(axis=0), k=10, neighbours=nb).p for i in range(n_sim)])
     for p in (p_ray, p_t2, p_ev):
         assert np.mean(p < 0.05) == pytest.approx(0.05, abs=0.015)
         assert stats.kstest(p, "uniform").pvalue > 1e-3
@@ -191,8 +193,8 @@ def test_phase_locked_signal_is_found(rng):
     M, K = 20, 30
     Z = rng.standard_normal((M, K)) + 1j * rng.standard_normal((M, K))
     Z[:, 10] += 2.5  # per-trial amplitude SNR 2.5 / sqrt(2) ~ 5 dB
-    assert vs.t2circ(Z[:, 10])["p"] < 1e-3
-    assert vs.rayleigh(Z[:, 10])["p"] < 1e-3
+    assert vs.t2circ(Z[:, 10]).p < 1e-3
+    assert vs.rayleigh(Z[:, 10]).p < 1e-3
 
 
 def test_friedman_matches_scipy(rng):
@@ -229,15 +231,17 @@ def test_holm_hand_example():
 
 
 def _design():
-    return V.Design(unit_name="syllable", unit_duration=0.25, levels=(("line", 4), ("pair", 2)),
-                    sr=16000, window=8.0, n_units=32, mode="files", source="simulation")
+    grid = grid_from_numbers(unit_duration=0.25, levels=[("line", 4), ("pair", 2)], sr=16000,
+                             n_top_groups=4, unit_name="syllable")
+    return V.Design(grid=grid, mode="files", source="simulation")
 
 
 def test_target_bins_cover_each_harmonic_once():
     # 4/1/0.5 Hz over 8 s: line 1,2,3 Hz; pair 0.5,1.5,2.5,3.5 Hz; 4 Hz (unit) excluded [calc]
-    tb = V.target_bins(_design())
-    assert sorted(k for n, k, _ in tb if n == "line") == [8, 16, 24]
-    assert sorted(k for n, k, _ in tb if n == "pair") == [4, 12, 20, 28]
+    tb = _design().grid.target_bins()
+    assert sorted(t.bin for t in tb if t.level == "line") == [8, 16, 24]
+    assert sorted(t.bin for t in tb if t.level == "pair") == [4, 12, 20, 28]
+    assert [t.rate_hz for t in tb if t.level == "line"] == [1.0, 2.0, 3.0]
 
 
 def test_clean_sets_pass_at_about_alpha(rng):
@@ -248,7 +252,7 @@ def test_clean_sets_pass_at_about_alpha(rng):
     correlated tests make it smaller).  alpha = 0.05 so that 300 sets give a usable count.
     """
     d = _design()
-    K = V.n_bins_needed(d)
+    K = d.grid.n_bins_needed()
     scale = 1.0 / np.sqrt(1.0 + np.arange(K) / 8.0)
     alpha, n_sim, hits = 0.05, 300, 0
     for _ in range(n_sim):
