@@ -2,7 +2,7 @@
 
 Unit ``k`` of a trial starts at sample ``S + round_half_up(k * T * fs)`` of the file, where
 ``S`` is the leading silence in samples; its slot is ``start(k+1) - start(k)`` samples long and
-the processed token of exactly that length fills it.  Onsets never drift, however long the
+the processed token (rendered once, at the shorter slot length) fills it.  Onsets never drift, however long the
 trial.  Memory: one trial at a time.
 """
 
@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from .recipe import HierarchySpec, RateTable
+from .grid import RateTable
 from .timing import seconds_to_samples, unit_start
 
 __all__ = ["trial_layout", "assemble_trial", "unit_rows", "fit_to_slot"]
@@ -53,7 +53,7 @@ def trial_layout(rates: RateTable) -> tuple[int, np.ndarray, int]:
 def assemble_trial(
     units: list[tuple[str, bool]] | tuple,
     *,
-    get: Callable[[str, int], np.ndarray],
+    get: Callable[[str], np.ndarray],
     rates: RateTable,
 ) -> np.ndarray:
     """Place each unit's processed token at its grid onset.
@@ -62,10 +62,10 @@ def assemble_trial(
     ----------
     units : sequence of (token_id, reversed)
         One entry per unit of the trial, lead-in first.
-    get : callable (token_id, n_samples) -> ndarray
-        Returns the processed token for a slot of ``n_samples``: exactly that long, or one
-        sample shorter (it is then reversed if asked and given a trailing zero, see
-        :func:`fit_to_slot`).
+    get : callable token_id -> ndarray
+        Returns the processed token, rendered once at the shorter slot length: it fills a
+        slot of that length exactly, a slot one sample longer with a trailing zero (reversed
+        first if asked, see :func:`fit_to_slot`).
     rates : RateTable
         Grid, sample rate and silences.
 
@@ -79,7 +79,7 @@ def assemble_trial(
     out = np.zeros(total, dtype=np.float64)
     for k, (token_id, rev) in enumerate(units):
         a, b = int(starts[k]), int(starts[k + 1])
-        seg = np.asarray(get(token_id, b - a))
+        seg = np.asarray(get(token_id))
         if seg.ndim != 1 or seg.size not in (b - a, b - a - 1):
             raise ValueError(f"token {token_id!r}: processed length {seg.shape} != slot {b - a}")
         out[a:b] = fit_to_slot(seg[::-1] if rev else seg, b - a)
@@ -90,7 +90,6 @@ def unit_rows(
     plan: Any,
     *,
     stim_file: str,
-    hierarchy: HierarchySpec,
     rates: RateTable,
 ) -> list[dict[str, Any]]:
     """Rows of units.tsv for one trial: every unit of every level (lead-in included, flagged).
@@ -119,5 +118,5 @@ def unit_rows(
             "lead_in": int(u.lead_in),
             "reversed": int(u.reversed),
         }
-        for u in level_units(plan, hierarchy=hierarchy)
+        for u in level_units(plan, rates=rates)
     ]

@@ -33,6 +33,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from .errors import DesignError
+from .grid import RateTable
 from .recipe import GenerateSpec, HierarchySpec, Recipe
 
 __all__ = [
@@ -901,13 +902,14 @@ def _block(
 
 
 # =========================================================================== tiling
-def level_units(plan: TrialPlan, *, hierarchy: HierarchySpec) -> list[LevelUnit]:
+def level_units(plan: TrialPlan, *, rates: RateTable) -> list[LevelUnit]:
     """Every unit of every level of a trial, lowest level first (rows for ``units.tsv``).
 
     Parameters
     ----------
     plan : TrialPlan
-    hierarchy : HierarchySpec
+    rates : RateTable
+        The grid: level names and sizes from the unit upwards.
 
     Returns
     -------
@@ -917,11 +919,11 @@ def level_units(plan: TrialPlan, *, hierarchy: HierarchySpec) -> list[LevelUnit]
         the parent group; for the top level within the trial, the lead-in group counting as 1.
     """
     rows: list[LevelUnit] = []
-    names = hierarchy.names
+    sizes = rates.levels
     n = len(plan.units)
-    for li, name in enumerate(names):
-        size = hierarchy.units_per(name)
-        parent = hierarchy.levels[li].size if li < len(hierarchy.levels) else None
+    for li, row in enumerate(rates.rows):
+        name, size = row.name, row.units_per_group
+        parent = sizes[li][1] if li < len(sizes) else None
         if n % size:
             raise DesignError(
                 f"trial {plan.stem}: {n} units do not tile whole {name}s of {size} units"

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
-from typing import Iterable, Sequence
+from typing import Sequence
 
 import numpy as np
 
@@ -26,7 +26,6 @@ from .errors import AudioInputError, RetimeError
 __all__ = [
     "F0Summary",
     "f0_summary",
-    "corpus_target_f0",
     "geometric_mean",
     "apply_pitch_policy",
     "active_rms_dbfs",
@@ -104,43 +103,6 @@ def f0_summary(x: np.ndarray, *, sr: int, context: float = 0.0) -> F0Summary:
     sd = float(np.std(semitones(voiced, med))) if voiced.size >= 2 else float("nan")
     frac = float(voiced.size / f0.size) if f0.size else 0.0
     return F0Summary(median_hz=med, sd_st=sd, voiced_fraction=frac, times=times, f0=f0)
-
-
-def corpus_target_f0(arrays: Iterable[np.ndarray], *, sr: int) -> float:
-    """Default pitch target: the median over tokens of each token's median Praat F0.
-
-    Each token counts once whatever its length; each is read with :data:`F0_CONTEXT_S` of
-    silence either side, as in the re-timing records.  Tokens Praat finds unvoiced (or too
-    short to measure) are skipped.
-
-    Parameters
-    ----------
-    arrays : iterable of ndarray
-        Token signals at ``sr``.
-    sr : int, Hz
-
-    Returns
-    -------
-    float, Hz
-
-    Raises
-    ------
-    RetimeError
-        If no token has a voiced frame (set ``pitch.target_hz`` instead).
-    """
-    meds = []
-    n = 0
-    for x in arrays:
-        n += 1
-        m = f0_summary(np.asarray(x, dtype=np.float64), sr=sr, context=F0_CONTEXT_S).median_hz
-        if np.isfinite(m):
-            meds.append(m)
-    if not meds:
-        raise RetimeError(
-            f"cannot compute the corpus median F0: Praat finds no voiced frame in any of the {n} "
-            "token(s); set pitch.target_hz in the recipe, or use pitch.policy 'keep'"
-        )
-    return float(np.median(meds))
 
 
 def geometric_mean(f: np.ndarray) -> float:

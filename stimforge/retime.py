@@ -33,27 +33,26 @@ import math
 import threading
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterable, Sequence
+from typing import Any, Callable, Iterable
 
 import numpy as np
 
 from .acoustics import active_bounds, active_mask, as_signal, peak_dbfs, steepest_rise_time
 from .cache import AnalysisCache, WorldAnalysis, analysis_key, default_cache_dir
 from .audio_io import to_jsonable
-from .defaults import ONSET_THRESHOLD_DB
 from .errors import AudioInputError, RetimeError
 from .prosody import (
     F0_CONTEXT_S,
     active_rms_dbfs,
     apply_fade,
     apply_pitch_policy,
-    corpus_target_f0,
     f0_summary,
     geometric_mean,
     level_gain_db,
     peak_guard_gain_db,
 )
 from .recipe import LevelSpecPolicy, PitchSpec, RetimeSpec
+from .timing import seconds_to_samples
 
 __all__ = [
     "TokenRecord",
@@ -65,13 +64,11 @@ __all__ = [
     "register_backend",
     "retime_token",
     "process_tokens",
-    "corpus_target_f0",
     "world_analysis",
     "world_resynthesize",
     "world_output_frames",
     "ANALYSIS_PAD_S",
     "MIN_TOKEN_S",
-    "ONSET_THRESHOLD_DB",
     "ALIGN_SMOOTH_S",
     "rise_time",
     "PSOLA_FACTOR_LIMITS",
@@ -180,14 +177,15 @@ class ProcessedToken:
 
 @dataclass(frozen=True, repr=False)
 class ProcessedSet:
-    """A re-timed corpus: one array per (token, slot length), one record per token.
+    """A re-timed corpus: one array and one record per token, all at one slot length.
 
     Attributes
     ----------
     records : list of TokenRecord
-        One per token, in input order, for the first slot length.
-    lengths : tuple of int
-        The distinct slot lengths built.
+        One per token, in input order.
+    n_samples : int
+        The slot length every token was rendered at (the shorter slot where the rounding rule
+        makes two; assembly pads the longer one, see :func:`stimforge.assemble.fit_to_slot`).
     target_f0 : float or None, Hz
         The pitch target used (None for ``keep``).
     set_gain_db : float, dB
@@ -199,25 +197,19 @@ class ProcessedSet:
     """
 
     records: list[TokenRecord]
-    lengths: tuple[int, ...]
+    n_samples: int
     target_f0: float | None
     set_gain_db: float
     headroom_db: float
     warnings: list[str]
-    _samples: dict[tuple[str, int], np.ndarray] = field(default_factory=dict)
+    _samples: dict[str, np.ndarray] = field(default_factory=dict)
 
-    def get(self, token_id: str, n_samples: int) -> np.ndarray:
-        """The processed samples of ``token_id`` at slot length ``n_samples`` (read-only)."""
+    def get(self, token_id: str) -> np.ndarray:
+        """The processed samples of ``token_id`` (read-only, ``n_samples`` long)."""
         try:
-            return self._samples[(token_id, int(n_samples))]
+            return self._samples[token_id]
         except KeyError:
-            known = sorted({k[0] for k in self._samples})
-            if token_id not in known:
-                raise KeyError(f"token {token_id!r} was not processed") from None
-            raise KeyError(
-                f"token {token_id!r} was built at slot lengths {list(self.lengths)}, "
-                f"not {n_samples}"
-            ) from None
+            raise KeyError(f"token {token_id!r} was not processed") from None
 
     def __len__(self) -> int:
         return len(self.records)
@@ -225,7 +217,7 @@ class ProcessedSet:
     def __repr__(self) -> str:
         f0 = "n/a" if self.target_f0 is None else f"{self.target_f0:.1f} Hz"
         return (
-            f"ProcessedSet({len(self.records)} tokens x lengths {list(self.lengths)}, "
+            f"ProcessedSet({len(self.records)} tokens of {self.n_samples} samples, "
             f"target F0 {f0}, set gain {self.set_gain_db:.2f} dB, headroom "
             f"{self.headroom_db:.2f} dB, {len(self.warnings)} warning(s))"
         )
@@ -671,16 +663,15 @@ def rise_time(y: np.ndarray, *, sr: int) -> float:
 
 def _align(
     y: np.ndarray, *, sr: int, retime: RetimeSpec, level: LevelSpecPolicy,
-    onset_threshold_db: float,
 ) -> tuple[np.ndarray, int, list[str]]:
     n = y.size
     warns: list[str] = []
     if retime.align == "onset":
-        b = active_bounds(y, sr=sr, threshold_db=onset_threshold_db)
+        b = active_bounds(y, sr=sr, threshold_db=retime.onset_threshold_db)
         shift = 0 if b is None else -b[0]
     else:
         r = rise_time(y, sr=sr)
-        shift = 0 if not np.isfinite(r) else int(math.floor((retime.align_offset - r) * sr + 0.5))
+        shift = 0 if not np.isfinite(r) else seconds_to_samples(retime.align_offset - r, sr=sr)
     shift = max(-n + 1, min(n - 1, shift))
     if shift == 0:
         return y, 0, warns
@@ -700,47 +691,43 @@ def _align(
     return out, shift, warns
 
 
-def _process_lengths(
-    x: np.ndarray, *, sr: int, plans: Sequence[tuple[int, _Plan]], retime: RetimeSpec,
+def _process_one(
+    x: np.ndarray, *, sr: int, n_samples: int, plan: _Plan, retime: RetimeSpec,
     pitch: PitchSpec, level: LevelSpecPolicy, target_hz: float | None,
-    cache: AnalysisCache | None, token_id: str, onset_threshold_db: float,
-) -> list[_Partial]:
-    out = []
+    cache: AnalysisCache | None, token_id: str,
+) -> _Partial:
+    """Backend, alignment, fade and the token's own gain; Praat F0 of the result."""
     ref = None
     if pitch.policy == "level":
         ref = _praat_in_context(x, sr=sr).geometric_mean_hz
         ref = float(ref) if np.isfinite(ref) else None
-    for i, (n, plan) in enumerate(plans):
-        req = BackendRequest(x=x, sr=sr, n_samples=n, retime=retime, pitch_policy=pitch.policy,
-                             target_hz=target_hz, cache=cache, token_id=token_id,
-                             reference_f0_hz=ref)
-        res = BACKENDS[plan.backend](req)
-        y = np.asarray(res.samples, dtype=np.float64)
-        if y.size != n:  # a backend broke its contract
-            raise RetimeError(f"backend {plan.backend!r} returned {y.size} samples for token "
-                              f"{token_id!r}, not {n}")
-        warns = list(plan.warnings) + list(res.warnings)
-        y, shift, w = _align(y, sr=sr, retime=retime, level=level,
-                             onset_threshold_db=onset_threshold_db)
-        warns += w
-        y = apply_fade(y, sr=sr, fade=level.fade)
-        try:
-            gain = level_gain_db(y, sr=sr, target_dbfs=level.target_dbfs,
-                                 threshold_db=level.active_threshold_db)
-        except AudioInputError:
-            raise AudioInputError(
-                f"token {token_id!r}: silent after re-timing to {n} samples; check the token"
-            ) from None
-        y = y * 10.0 ** (gain / 20.0)
-        part = _Partial(n_samples=n, samples=y, backend=plan.backend,
-                        factor=1.0 if plan.backend == "cut-pad" else plan.factor,
-                        pitch_method=res.pitch_method, gain_db=gain, align_shift_s=shift / sr,
-                        warnings=warns)
-        if i == 0:  # records describe the first length; Praat F0 does not depend on gain
-            s = _praat_in_context(y, sr=sr)
-            part.f0_after, part.f0_sd_after = s.median_hz, s.sd_st
-        out.append(part)
-    return out
+    req = BackendRequest(x=x, sr=sr, n_samples=n_samples, retime=retime,
+                         pitch_policy=pitch.policy, target_hz=target_hz, cache=cache,
+                         token_id=token_id, reference_f0_hz=ref)
+    res = BACKENDS[plan.backend](req)
+    y = np.asarray(res.samples, dtype=np.float64)
+    if y.size != n_samples:  # a backend broke its contract
+        raise RetimeError(f"backend {plan.backend!r} returned {y.size} samples for token "
+                          f"{token_id!r}, not {n_samples}")
+    warns = list(plan.warnings) + list(res.warnings)
+    y, shift, w = _align(y, sr=sr, retime=retime, level=level)
+    warns += w
+    y = apply_fade(y, sr=sr, fade=level.fade)
+    try:
+        gain = level_gain_db(y, sr=sr, target_dbfs=level.target_dbfs,
+                             threshold_db=level.active_threshold_db)
+    except AudioInputError:
+        raise AudioInputError(
+            f"token {token_id!r}: silent after re-timing to {n_samples} samples; check the token"
+        ) from None
+    y = y * 10.0 ** (gain / 20.0)
+    part = _Partial(n_samples=n_samples, samples=y, backend=plan.backend,
+                    factor=1.0 if plan.backend == "cut-pad" else plan.factor,
+                    pitch_method=res.pitch_method, gain_db=gain, align_shift_s=shift / sr,
+                    warnings=warns)
+    s = _praat_in_context(y, sr=sr)  # Praat F0 does not depend on the gain
+    part.f0_after, part.f0_sd_after = s.median_hz, s.sd_st
+    return part
 
 
 def _praat_in_context(x: np.ndarray, *, sr: int):
@@ -770,7 +757,6 @@ def retime_token(
     token_id: str = "",
     label: str = "",
     cache: AnalysisCache | str | Path | None = None,
-    onset_threshold_db: float = ONSET_THRESHOLD_DB,
 ) -> ProcessedToken:
     """Re-time one token to exactly ``n_samples`` with the pitch and level policies.
 
@@ -783,14 +769,12 @@ def retime_token(
         Slot length.
     retime, pitch, level : RetimeSpec, PitchSpec, LevelSpecPolicy
     target_f0 : float or None, Hz
-        Pitch target when ``pitch.target_hz`` is not set (e.g. the corpus median from
-        :func:`corpus_target_f0`); ``pitch.target_hz`` wins when both are given.
+        Pitch target when ``pitch.target_hz`` is not set (the build passes the corpus
+        median, :meth:`stimforge.corpus.Corpus.median_f0`); ``pitch.target_hz`` wins.
     token_id, label : str
         For records and error messages.
     cache : AnalysisCache, path or None
         WORLD analysis cache; ``None`` keeps the analysis in memory only.
-    onset_threshold_db : float, dB re peak
-        Threshold of the ``onset`` alignment (not yet a recipe field).
 
     Returns
     -------
@@ -828,13 +812,10 @@ def retime_token(
     if pitch.policy != "keep" and target is None:
         raise RetimeError(
             f"pitch.policy {pitch.policy!r} needs a target F0: set pitch.target_hz, or pass "
-            "target_f0 (e.g. corpus_target_f0(...))"
+            "target_f0 (e.g. the corpus median, Corpus.median_f0())"
         )
-    part = _process_lengths(
-        x, sr=sr, plans=[(n_samples, plan)], retime=retime, pitch=pitch, level=level,
-        target_hz=target, cache=_as_cache(cache), token_id=token_id,
-        onset_threshold_db=onset_threshold_db,
-    )[0]
+    part = _process_one(x, sr=sr, n_samples=n_samples, plan=plan, retime=retime, pitch=pitch,
+                        level=level, target_hz=target, cache=_as_cache(cache), token_id=token_id)
     set_gain = peak_guard_gain_db([peak_dbfs(part.samples)], ceiling_dbfs=level.peak_ceiling_dbfs)
     warns = list(part.warnings)
     if set_gain < 0:
@@ -870,89 +851,31 @@ def _record(x, y, part: _Partial, *, sr, token_id, label, level, set_gain, warni
 
 
 # =========================================================================== the set
-def _worker(payload: dict[str, Any]) -> tuple[list[_Partial], float]:
-    """Process one token at every requested length (runs in a worker process or inline)."""
-    x = payload["x"]
-    cache = AnalysisCache(payload["cache_dir"])
-    parts = _process_lengths(
-        x, sr=payload["sr"], plans=payload["plans"], retime=payload["retime"],
-        pitch=payload["pitch"], level=payload["level"], target_hz=payload["target_hz"],
-        cache=cache, token_id=payload["token_id"],
-        onset_threshold_db=payload["onset_threshold_db"],
-    )
-    return parts, _praat_in_context(x, sr=payload["sr"]).median_hz
+def _worker(payload: dict[str, Any]) -> tuple[_Partial, float]:
+    """Process one token (runs in a worker process or inline): its part and Praat F0 before."""
+    x, sr = payload["x"], payload["sr"]
+    part = _process_one(x, sr=sr, n_samples=payload["n_samples"], plan=payload["plan"],
+                        retime=payload["retime"], pitch=payload["pitch"],
+                        level=payload["level"], target_hz=payload["target_hz"],
+                        cache=AnalysisCache(payload["cache_dir"]), token_id=payload["token_id"])
+    return part, _praat_in_context(x, sr=sr).median_hz
 
 
-def _resolve_cache_dir(retime: RetimeSpec, cache_dir: str | Path | None) -> Path | None:
-    if cache_dir is not None:
-        return Path(cache_dir).expanduser()
+def _cache_dir(retime: RetimeSpec) -> Path | None:
+    """The analysis cache folder the recipe asks for (None: in memory only)."""
     if not retime.cache:
         return None
     return Path(retime.cache_dir) if retime.cache_dir is not None else default_cache_dir()
 
 
-def process_tokens(
-    tokens: Iterable[Any],
-    *,
-    sr: int,
-    lengths: Sequence[int],
-    retime: RetimeSpec,
-    pitch: PitchSpec,
-    level: LevelSpecPolicy,
-    target_f0: float | None = None,
-    jobs: int = 1,
-    progress: bool = True,
-    cache_dir: str | Path | None = None,
-    onset_threshold_db: float = ONSET_THRESHOLD_DB,
-) -> ProcessedSet:
-    """Re-time every token to every distinct slot length, with the set-wide peak guard.
-
-    Parameters
-    ----------
-    tokens : iterable
-        Objects with ``.id``, ``.label`` and ``.samples`` (1-D, at ``sr``); ids unique.
-    sr : int, Hz
-    lengths : sequence of int, samples
-        Slot lengths (the rate table's one or two); each distinct one is built.
-    retime, pitch, level : RetimeSpec, PitchSpec, LevelSpecPolicy
-    target_f0 : float or None, Hz
-        Pitch target if ``pitch.target_hz`` is unset; if both are None and the policy needs
-        one, the corpus median Praat F0 (:func:`corpus_target_f0`) is used.
-    jobs : int
-        Worker processes (results are identical for any value).
-    progress : bool
-        Show a tqdm progress bar.
-    cache_dir : path or None
-        Analysis cache folder; default ``retime.cache_dir``, else the user cache folder
-        (``retime.cache: false`` disables the disk cache).
-    onset_threshold_db : float, dB re peak
-        Threshold of the ``onset`` alignment (not yet a recipe field).
-
-    Returns
-    -------
-    ProcessedSet
-
-    Raises
-    ------
-    AudioInputError
-        Listing every unusable token (NaN, empty, silent, too short).
-    RetimeError
-        Listing every token/length whose stretch factor breaks the policy or a backend limit.
-    """
-    from tqdm.auto import tqdm
-
-    tokens = list(tokens)
+def _validated_arrays(tokens: list[Any], *, sr: int) -> tuple[list[str], list[np.ndarray]]:
+    """Token ids and validated float64 arrays; one error listing every unusable token."""
     if not tokens:
         raise RetimeError("process_tokens: no tokens given")
-    lens = [_check_length(n) for n in lengths]
-    if not lens:
-        raise RetimeError("process_tokens: no slot lengths given")
-    lens = list(dict.fromkeys(lens))
     ids = [str(t.id) for t in tokens]
     dup = sorted({i for i in ids if ids.count(i) > 1})
     if dup:
         raise RetimeError(f"process_tokens: token ids must be unique; repeated: {dup}")
-
     arrays, bad = [], []
     for t in tokens:
         t_sr = getattr(t, "sr", sr)
@@ -965,32 +888,29 @@ def process_tokens(
             bad.append(str(exc))
     if bad:
         raise AudioInputError(f"{len(bad)} unusable token(s): " + "; ".join(bad))
+    return ids, arrays
 
-    rows, plans = [], []
-    for tid, x in zip(ids, arrays):
-        p = [(n, _plan(x.size, n, retime)) for n in lens]
-        plans.append(p)
-        rows += [(tid, x.size, n, pl) for n, pl in p]
-    _raise_plan_problems(rows, retime)
 
-    set_warnings: list[str] = []
+def _set_target(pitch: PitchSpec, target_f0: float | None) -> tuple[float | None, list[str]]:
+    """The pitch target of the set, and a warning when an argument was overridden."""
+    warns = []
     target = _resolve_target(pitch, target_f0)
     if pitch.policy != "keep":
         if pitch.target_hz is not None and target_f0 is not None and \
                 abs(float(target_f0) - float(pitch.target_hz)) > 1e-9:
-            set_warnings.append(f"pitch.target_hz {pitch.target_hz:g} Hz used; the target_f0 "
-                                f"argument {target_f0:g} Hz was ignored")
+            warns.append(f"pitch.target_hz {pitch.target_hz:g} Hz used; the target_f0 "
+                         f"argument {target_f0:g} Hz was ignored")
         if target is None:
-            target = corpus_target_f0(arrays, sr=sr)
-            logger.info("pitch target: corpus median F0 %.2f Hz", target)
+            raise RetimeError(
+                f"pitch.policy {pitch.policy!r} needs a target F0: set pitch.target_hz, or pass "
+                "target_f0 (the build passes the corpus median, Corpus.median_f0())")
+    return target, warns
 
-    cdir = _resolve_cache_dir(retime, cache_dir)
-    payloads = [
-        {"x": x, "sr": sr, "plans": p, "retime": retime, "pitch": pitch, "level": level,
-         "target_hz": target, "cache_dir": cdir, "token_id": tid,
-         "onset_threshold_db": onset_threshold_db}
-        for tid, x, p in zip(ids, arrays, plans)
-    ]
+
+def _run_workers(payloads: list[dict[str, Any]], *, jobs: int, progress: bool) -> list[Any]:
+    """Run :func:`_worker` over the payloads, in order, on ``jobs`` processes."""
+    from tqdm.auto import tqdm
+
     results: list[Any] = [None] * len(payloads)
     bar = tqdm(total=len(payloads), desc="re-timing tokens", unit="token", disable=not progress)
     try:
@@ -1011,8 +931,70 @@ def process_tokens(
                 bar.update(1)
     finally:
         bar.close()
+    return results
 
-    peaks = [peak_dbfs(part.samples) for parts, _ in results for part in parts]
+
+def process_tokens(
+    tokens: Iterable[Any],
+    *,
+    sr: int,
+    n_samples: int,
+    retime: RetimeSpec,
+    pitch: PitchSpec,
+    level: LevelSpecPolicy,
+    target_f0: float | None = None,
+    jobs: int | None = None,
+    progress: bool = True,
+) -> ProcessedSet:
+    """Re-time every token to exactly ``n_samples``, with the set-wide peak guard.
+
+    Parameters
+    ----------
+    tokens : iterable
+        Objects with ``.id``, ``.label`` and ``.samples`` (1-D, at ``sr``); ids unique.
+    sr : int, Hz
+    n_samples : int, samples >= 2
+        The slot length (the rate table's shorter slot where it has two).
+    retime, pitch, level : RetimeSpec, PitchSpec, LevelSpecPolicy
+        The recipe's sections; the alignment threshold, the analysis cache folder
+        (``retime.cache``, ``retime.cache_dir``, else the user cache folder) and the number of
+        workers (``retime.jobs``) come from ``retime``.
+    target_f0 : float or None, Hz
+        Pitch target if ``pitch.target_hz`` is unset (the build passes the corpus median,
+        :meth:`stimforge.corpus.Corpus.median_f0`); needed unless the policy is ``keep``.
+    jobs : int, optional
+        Overrides ``retime.jobs`` (results are identical for any value).
+    progress : bool
+        Show a tqdm progress bar.
+
+    Returns
+    -------
+    ProcessedSet
+
+    Raises
+    ------
+    AudioInputError
+        Listing every unusable token (NaN, empty, silent, too short).
+    RetimeError
+        Listing every token whose stretch factor breaks the policy or a backend limit; a
+        pitch policy without a target.
+    """
+    tokens = list(tokens)
+    n = _check_length(n_samples)
+    ids, arrays = _validated_arrays(tokens, sr=sr)
+    plans = [_plan(x.size, n, retime) for x in arrays]
+    _raise_plan_problems([(tid, x.size, n, pl) for tid, x, pl in zip(ids, arrays, plans)], retime)
+    target, set_warnings = _set_target(pitch, target_f0)
+    cdir = _cache_dir(retime)
+    payloads = [
+        {"x": x, "sr": sr, "n_samples": n, "plan": pl, "retime": retime, "pitch": pitch,
+         "level": level, "target_hz": target, "cache_dir": cdir, "token_id": tid}
+        for tid, x, pl in zip(ids, arrays, plans)
+    ]
+    results = _run_workers(payloads, jobs=int(retime.jobs if jobs is None else jobs),
+                           progress=progress)
+
+    peaks = [peak_dbfs(part.samples) for part, _ in results]
     set_gain = peak_guard_gain_db(peaks, ceiling_dbfs=level.peak_ceiling_dbfs)
     if set_gain < 0:
         msg = (f"peak guard: a token would peak at {max(peaks):.2f} dBFS, above "
@@ -1021,25 +1003,22 @@ def process_tokens(
         logger.warning(msg)
         set_warnings.append(msg)
     scale = 10.0 ** (set_gain / 20.0)
-    samples: dict[tuple[str, int], np.ndarray] = {}
+    samples: dict[str, np.ndarray] = {}
     records: list[TokenRecord] = []
     token_warnings: list[str] = []
-    top = -math.inf
-    for t, tid, x, (parts, f0_before) in zip(tokens, ids, arrays, results):
-        for part in parts:
-            y = part.samples * scale
-            y.setflags(write=False)
-            samples[(tid, part.n_samples)] = y
-            top = max(top, peak_dbfs(y))
-            token_warnings += [f"{tid} ({part.n_samples} samples): {w}" for w in part.warnings]
-        first = parts[0]
-        records.append(_record(x, samples[(tid, first.n_samples)], first, sr=sr, token_id=tid,
-                               label=getattr(t, "label", ""), level=level, set_gain=set_gain,
-                               warnings=first.warnings, f0_before=f0_before))
+    for t, tid, x, (part, f0_before) in zip(tokens, ids, arrays, results):
+        y = part.samples * scale
+        y.setflags(write=False)
+        samples[tid] = y
+        token_warnings += [f"{tid}: {w}" for w in part.warnings]
+        records.append(_record(x, y, part, sr=sr, token_id=tid, label=getattr(t, "label", ""),
+                               level=level, set_gain=set_gain, warnings=part.warnings,
+                               f0_before=f0_before))
+    top = max(peak_dbfs(y) for y in samples.values())
     headroom = float(level.peak_ceiling_dbfs - top)
-    logger.info("re-timed %d token(s) x %d length(s); set gain %.2f dB; headroom %.2f dB below "
-                "the %g dBFS ceiling", len(records), len(lens), set_gain, headroom,
+    logger.info("re-timed %d token(s) to %d samples; set gain %.2f dB; headroom %.2f dB below "
+                "the %g dBFS ceiling", len(records), n, set_gain, headroom,
                 level.peak_ceiling_dbfs)
-    return ProcessedSet(records=records, lengths=tuple(lens), target_f0=target,
-                        set_gain_db=set_gain, headroom_db=headroom,
-                        warnings=set_warnings + token_warnings, _samples=samples)
+    return ProcessedSet(records=records, n_samples=n, target_f0=target, set_gain_db=set_gain,
+                        headroom_db=headroom, warnings=set_warnings + token_warnings,
+                        _samples=samples)

@@ -9,13 +9,14 @@ import numpy as np
 import pytest
 
 from stimforge.assemble import assemble_trial, fit_to_slot, trial_layout, unit_rows
-from stimforge.recipe import HierarchySpec, RateWarning, rate_table
+from stimforge.grid import RateWarning, rate_table
 
 
-def _rates(sr, n_top, T=0.25, levels=(("word", 2), ("line", 2)), lead_in=False, sb=0.0, sa=0.0):
+def _rates(sr, n_top, T=0.25, levels=(("word", 2), ("line", 2)), lead_in=False, sb=0.0, sa=0.0,
+           unit="syllable"):
     with warnings.catch_warnings():  # short windows put rates close together: not the point here
         warnings.simplefilter("ignore", RateWarning)
-        return rate_table(unit_name="syllable", unit_duration=T, levels=list(levels), sr=sr,
+        return rate_table(unit_name=unit, unit_duration=T, levels=list(levels), sr=sr,
                           n_top_groups=n_top, lead_in=lead_in, silence_before=sb,
                           silence_after=sa)
 
@@ -38,8 +39,10 @@ def test_placement_and_reversal():
     lead, starts, total = trial_layout(rt)
     assert lead == 2205 and total == 2205 + 22050 + 4410  # 0.1 s, 1 s, 0.2 s at 22.05 kHz (calc)
 
-    def get(token_id, n):
-        return np.linspace(0.1, 0.2, n) * (1 + int(token_id))
+    slot = int(np.diff(starts).min())  # 22050 / 4: every slot is 5512 or 5513 samples
+
+    def get(token_id):
+        return np.linspace(0.1, 0.2, slot) * (1 + int(token_id))
 
     units = [(str(i), i == 2) for i in range(4)]
     x = assemble_trial(units, get=get, rates=rt)
@@ -47,14 +50,14 @@ def test_placement_and_reversal():
     assert not np.any(x[:lead]) and not np.any(x[starts[-1]:])
     for i in range(4):
         seg = x[starts[i]:starts[i + 1]]
-        ref = get(str(i), starts[i + 1] - starts[i])
-        np.testing.assert_array_equal(seg, ref[::-1] if i == 2 else ref)
+        ref = fit_to_slot(get(str(i))[::-1] if i == 2 else get(str(i)), starts[i + 1] - starts[i])
+        np.testing.assert_array_equal(seg, ref)
     with pytest.raises(ValueError, match="trial has 3 units"):
         assemble_trial(units[:3], get=get, rates=rt)
     with pytest.raises(ValueError, match="processed length"):
-        assemble_trial(units, get=lambda t, n: np.zeros(n + 1), rates=rt)
+        assemble_trial(units, get=lambda t: np.zeros(slot + 2), rates=rt)
     with pytest.raises(ValueError, match="processed length"):
-        assemble_trial(units, get=lambda t, n: np.zeros(n - 2), rates=rt)
+        assemble_trial(units, get=lambda t: np.zeros(slot - 2), rates=rt)
 
 
 def test_one_rendering_for_both_slot_lengths():
@@ -66,7 +69,7 @@ def test_one_rendering_for_both_slot_lengths():
     assert list(np.diff(starts)[:4]) == [5513, 5512, 5513, 5512]
     tok = np.sin(np.linspace(0, np.pi, 5512)) + 0.1  # nonzero at both ends, to see placement
     x = assemble_trial([("a", False), ("a", False), ("a", True), ("a", True)],
-                       get=lambda t, n: tok, rates=rt)
+                       get=lambda t: tok, rates=rt)
     np.testing.assert_array_equal(x[starts[0]:starts[0] + 5512], tok)
     np.testing.assert_array_equal(x[starts[1]:starts[1] + 5512], tok)
     assert x[starts[1] - 1] == 0.0  # the 5513 slot's trailing zero
@@ -78,14 +81,11 @@ def test_one_rendering_for_both_slot_lengths():
 
 
 def test_unit_rows_positions():
-    h = HierarchySpec.model_validate({"unit": {"name": "syl", "duration": 0.25},
-                                      "levels": [{"name": "word", "size": 3},
-                                                 {"name": "line", "size": 2}]})
-    rt = _rates(16000, 2, levels=(("word", 3), ("line", 2)), lead_in=True)
+    rt = _rates(16000, 2, levels=(("word", 3), ("line", 2)), lead_in=True, unit="syl")
     U = SimpleNamespace
     plan = U(condition="c", trial=1, lead_in_units=6,
              units=tuple(U(label=f"s{i}", token_id=f"t{i}", reversed=False) for i in range(18)))
-    rows = unit_rows(plan, stim_file="stimuli/c_001.wav", hierarchy=h, rates=rt)
+    rows = unit_rows(plan, stim_file="stimuli/c_001.wav", rates=rt)
     syl = [r for r in rows if r["level"] == "syl"]
     words = [r for r in rows if r["level"] == "word"]
     lines = [r for r in rows if r["level"] == "line"]

@@ -155,9 +155,9 @@ def test_onsets_exact_and_on_grid(tiny):
     used = sorted({u["token"] for u in units})
     tokens = [t for t in corpus.tokens if t.id in used]
     base_n = rt.slot_lengths[0]  # every token is rendered once, at the shorter slot length
-    ps = process_tokens(tokens, sr=rt.sr, lengths=[base_n], retime=recipe.retime,
+    ps = process_tokens(tokens, sr=rt.sr, n_samples=base_n, retime=recipe.retime,
                         pitch=recipe.pitch, level=recipe.level, target_f0=corpus.median_f0(),
-                        progress=False, cache_dir=recipe.retime.cache_dir)
+                        progress=False)
     lead = round(recipe.trials.silence_before * rt.sr)
     audio: dict[str, np.ndarray] = {}
     for u in units:
@@ -168,7 +168,7 @@ def test_onsets_exact_and_on_grid(tiny):
         # the table's onset is the grid onset within one sample (here: within 1 us)
         assert float(u["onset"]) * rt.sr == pytest.approx(start, abs=0.05)
         assert float(u["duration"]) * rt.sr == pytest.approx(n, abs=0.05)
-        seg = ps.get(u["token"], base_n)
+        seg = ps.get(u["token"])
         if u["reversed"] == "1":
             seg = seg[::-1]
         # PCM_24 quantisation step is 2**-23 (soundfile/libsndfile scaling); a slot one sample

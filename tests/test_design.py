@@ -237,7 +237,7 @@ def test_tiling_and_positions(tmp_path, h3, design_seed):
     parents = {"syllable": 2, "word": 2, "line": 2, "couplet": None}
     for t in d.trials:
         assert len(t.units) == n and t.lead_in_units == 8
-        rows = level_units(t, hierarchy=r.hierarchy)
+        rows = level_units(t, rates=r.rates())
         for level, size in sizes.items():
             lv = [x for x in rows if x.level == level]
             assert len(lv) == n // size

@@ -14,7 +14,6 @@ from stimforge.prosody import (
     active_rms_dbfs,
     apply_fade,
     apply_pitch_policy,
-    corpus_target_f0,
     geometric_mean,
     level_gain_db,
     peak_guard_gain_db,
@@ -80,20 +79,6 @@ def test_pitch_policy_errors(policy, target, match):
         apply_pitch_policy(np.array([100.0]), policy=policy, target_hz=target)
 
 
-def test_corpus_target_is_median_of_token_medians():
-    sr = 16000
-    toks = [tone(sr, 0.2, f, 0.3) for f in (100.0, 150.0, 200.0)]
-    toks.append(0.1 * np.random.default_rng(SEED).standard_normal(3200))  # unvoiced: skipped
-    # median of (100, 150, 200) = 150 (calc); Praat reads steady tones within 1 Hz
-    assert corpus_target_f0(toks, sr=sr) == pytest.approx(150.0, abs=1.0)
-
-
-def test_corpus_target_without_voicing():
-    rng = np.random.default_rng(SEED)
-    with pytest.raises(RetimeError, match="no voiced frame.*target_hz"):
-        corpus_target_f0([0.1 * rng.standard_normal(3200)], sr=16000)
-
-
 # --------------------------------------------------------------------------- level
 def test_active_rms_ignores_silence():
     sr = 16000
@@ -124,13 +109,12 @@ def test_set_levels_fades_and_full_scale(backend):
     toks = [Tok(f"t{i}", "a", tone(sr, 0.2 + 0.01 * i, 120 + 10 * i, a))
             for i, a in enumerate(amps)]
     lvl = LevelSpecPolicy(target_dbfs=-24.0, fade=0.02)
-    s = process_tokens(toks, sr=sr, lengths=[4000], retime=RetimeSpec(backend=backend),
-                       pitch=PitchSpec(policy="keep"), level=lvl, progress=False,
-                       cache_dir=None)
+    s = process_tokens(toks, sr=sr, n_samples=4000, retime=RetimeSpec(backend=backend),
+                       pitch=PitchSpec(policy="keep"), level=lvl, progress=False)
     assert s.set_gain_db == 0.0 and s.headroom_db > 0
     L = int(round(0.02 * sr))
     for t, r in zip(toks, s.records):
-        y = s.get(t.id, 4000)
+        y = s.get(t.id)
         m = active_mask(y, sr=sr, threshold_db=lvl.active_threshold_db)
         assert rms_dbfs(y[m]) == pytest.approx(-24.0, abs=0.1)  # spec bound, not a published value
         assert r.rms_after_dbfs == pytest.approx(-24.0, abs=0.1)
@@ -151,13 +135,13 @@ def test_peak_guard_lowers_the_whole_set(caplog):
     toks = [Tok("spiky", "a", spiky), Tok("smooth", "a", smooth)]
     lvl = LevelSpecPolicy(target_dbfs=-6.0, peak_ceiling_dbfs=-1.0)
     with caplog.at_level(logging.WARNING, logger="stimforge"):
-        s = process_tokens(toks, sr=sr, lengths=[4000, 4001],
+        s = process_tokens(toks, sr=sr, n_samples=4000,
                            retime=RetimeSpec(backend="cut-pad"),
                            pitch=PitchSpec(policy="keep"), level=lvl, progress=False)
     assert s.set_gain_db < 0
     assert "peak guard" in caplog.text and any("peak guard" in w for w in s.warnings)
     assert {r.set_gain_db for r in s.records} == {s.set_gain_db}
-    peaks = [np.max(np.abs(s.get(t.id, n))) for t in toks for n in (4000, 4001)]
+    peaks = [np.max(np.abs(s.get(t.id))) for t in toks]
     assert 20 * np.log10(max(peaks)) == pytest.approx(-1.0, abs=1e-9)  # at the ceiling
     assert s.headroom_db == pytest.approx(0.0, abs=1e-9)
     # relative levels untouched: both tokens sit at target + set gain

@@ -179,15 +179,15 @@ def test_flat_glide_reads_flat_at_target(sr, backend):
 def test_flat_tts_tokens(tts_tokens):
     toks = [Tok(text, "s", x) for text, x, _ in tts_tokens]
     sr = tts_tokens[0][2]
-    out = process_tokens(toks, sr=sr, lengths=[5512, 5513], retime=RetimeSpec(),
+    # the build's target: the median of the tokens' own Praat medians
+    target = float(np.median([f0_summary(x, sr=sr).median_hz for _, x, _ in tts_tokens]))
+    out = process_tokens(toks, sr=sr, n_samples=5512, retime=RetimeSpec(),
                          pitch=PitchSpec(policy="flat"), level=LevelSpecPolicy(),
-                         progress=False, cache_dir=None)
+                         target_f0=target, progress=False)
+    assert out.target_f0 == target
     for r in out.records:
         assert r.f0_sd_after_st < 0.3  # spec bound, not a published value
-        assert abs(semitones(r.f0_after_hz, out.target_f0)) < 0.3
-    # default target: median of the tokens' own Praat medians
-    assert min(r.f0_before_hz for r in out.records) <= out.target_f0 <= \
-        max(r.f0_before_hz for r in out.records)
+        assert abs(semitones(r.f0_after_hz, target)) < 0.3
 
 
 def _contour(x, sr, pad):
@@ -305,27 +305,27 @@ def test_out_of_range_error_lists_every_token():
     sr = 16000
     toks = _toks(sr, (0.10, 0.20, 0.50))  # factors 2.5, 1.25, 0.5 for a 0.25 s slot
     with pytest.raises(RetimeError, match=r"2 token/slot.*'t0'.*2\.500.*'t2'.*0\.500"):
-        process_tokens(toks, sr=sr, lengths=[4000], retime=RetimeSpec(), pitch=PitchSpec(),
+        process_tokens(toks, sr=sr, n_samples=4000, retime=RetimeSpec(), pitch=PitchSpec(),
                        level=LevelSpecPolicy(), target_f0=130, progress=False)
 
 
 def test_out_of_range_warn_and_cut_pad():
     sr = 16000
     toks = _toks(sr, (0.12, 0.2))
-    w = process_tokens(toks, sr=sr, lengths=[4000], retime=RetimeSpec(out_of_range="warn"),
+    w = process_tokens(toks, sr=sr, n_samples=4000, retime=RetimeSpec(out_of_range="warn"),
                        pitch=PitchSpec(), level=LevelSpecPolicy(), target_f0=130,
-                       progress=False, cache_dir=None)
+                       progress=False)
     assert w.records[0].backend == "world"
     assert w.records[0].stretch_factor == pytest.approx(4000 / 1920)  # calc
     assert any("stretched anyway" in s for s in w.records[0].warnings)
     assert not w.records[1].warnings
-    c = process_tokens(toks, sr=sr, lengths=[4000],
+    c = process_tokens(toks, sr=sr, n_samples=4000,
                        retime=RetimeSpec(out_of_range="cut-pad"), pitch=PitchSpec(),
                        level=LevelSpecPolicy(), target_f0=130, progress=False)
     assert c.records[0].backend == "cut-pad" and c.records[0].stretch_factor == 1.0
     assert any("fell back to cut-pad" in s for s in c.records[0].warnings)
     assert c.records[1].backend == "world"
-    assert c.get("t0", 4000).size == 4000
+    assert c.get("t0").size == 4000
 
 
 @pytest.mark.parametrize("dur, factor", [(0.07, "3.571"), (1.0, "0.250")])
@@ -370,7 +370,7 @@ def test_bad_tokens_listed_together():
     toks = [Tok("a", "ka", np.zeros(3000)), Tok("b", "ka", glide(sr, 0.2)),
             Tok("c", "ka", np.full(3000, np.nan))]
     with pytest.raises(AudioInputError, match=r"2 unusable.*'a'.*'c'"):
-        process_tokens(toks, sr=sr, lengths=[4000], retime=RetimeSpec(), pitch=PitchSpec(),
+        process_tokens(toks, sr=sr, n_samples=4000, retime=RetimeSpec(), pitch=PitchSpec(),
                        level=LevelSpecPolicy(), target_f0=130, progress=False)
 
 
@@ -388,7 +388,7 @@ def test_flat_without_target():
 def test_duplicate_ids():
     t = Tok("a", "ka", glide(16000, 0.2))
     with pytest.raises(RetimeError, match="unique"):
-        process_tokens([t, t], sr=16000, lengths=[4000], retime=RetimeSpec(),
+        process_tokens([t, t], sr=16000, n_samples=4000, retime=RetimeSpec(),
                        pitch=PitchSpec(), level=LevelSpecPolicy(), target_f0=130,
                        progress=False)
 
@@ -402,20 +402,19 @@ def test_same_token_twice_identical():
 def test_jobs_and_cache_give_identical_samples(tmp_path):
     sr = 16000
     toks = _toks(sr, (0.18, 0.2, 0.22))
-    kw = dict(sr=sr, lengths=[4000, 4001], retime=RetimeSpec(), pitch=PitchSpec(),
-              level=LevelSpecPolicy(), progress=False, cache_dir=tmp_path / "c")
+    kw = dict(sr=sr, n_samples=4000, retime=RetimeSpec(cache_dir=tmp_path / "c"),
+              pitch=PitchSpec(), level=LevelSpecPolicy(), target_f0=130, progress=False)
     cold = process_tokens(toks, jobs=1, **kw)
     files = sorted((tmp_path / "c" / "world-analysis").glob("*.npz"))
     assert len(files) == 3  # one analysis per distinct token, not per length
     warm = process_tokens(toks, jobs=1, **kw)
     par = process_tokens(toks, jobs=2, **kw)
     for t in toks:
-        for n in (4000, 4001):
-            np.testing.assert_array_equal(cold.get(t.id, n), warm.get(t.id, n))
-            np.testing.assert_array_equal(cold.get(t.id, n), par.get(t.id, n))
+        np.testing.assert_array_equal(cold.get(t.id), warm.get(t.id))
+        np.testing.assert_array_equal(cold.get(t.id), par.get(t.id))
     assert [r.to_dict() for r in cold.records] == [r.to_dict() for r in par.records]
-    with pytest.raises(KeyError, match="4000, 4001"):
-        cold.get("t0", 4002)
+    with pytest.raises(KeyError, match="'t9' was not processed"):
+        cold.get("t9")
 
 
 def test_cache_hit_equals_fresh_analysis(tmp_path):
@@ -481,10 +480,10 @@ def test_default_cache_location(tmp_path, monkeypatch):
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "x"))
     assert default_cache_dir() == tmp_path / "x" / "stimforge"
     toks = _toks(16000, (0.2,))
-    process_tokens(toks, sr=16000, lengths=[4000], retime=RetimeSpec(), pitch=PitchSpec(),
+    process_tokens(toks, sr=16000, n_samples=4000, retime=RetimeSpec(), pitch=PitchSpec(),
                    level=LevelSpecPolicy(), target_f0=130, progress=False)
     assert len(list((tmp_path / "x" / "stimforge" / "world-analysis").glob("*.npz"))) == 1
-    process_tokens(toks, sr=16000, lengths=[4000], retime=RetimeSpec(cache_dir=tmp_path / "r"),
+    process_tokens(toks, sr=16000, n_samples=4000, retime=RetimeSpec(cache_dir=tmp_path / "r"),
                    pitch=PitchSpec(), level=LevelSpecPolicy(), target_f0=130, progress=False)
     assert len(list((tmp_path / "r" / "world-analysis").glob("*.npz"))) == 1
 
@@ -505,7 +504,7 @@ def test_record_to_dict_is_json(noise_rng):
 
 def test_progress_bar_runs(capsys):
     toks = _toks(16000, (0.2, 0.21))
-    s = process_tokens(toks, sr=16000, lengths=[4000], retime=RetimeSpec(cache=False),
+    s = process_tokens(toks, sr=16000, n_samples=4000, retime=RetimeSpec(cache=False),
                        pitch=PitchSpec(), level=LevelSpecPolicy(), target_f0=130,
                        progress=True)
     assert "re-timing" in capsys.readouterr().err
@@ -530,7 +529,7 @@ def test_context_padding_keeps_short_tokens_voiced(method):
 
 
 def test_cache_off_writes_nothing(tmp_path):
-    process_tokens(_toks(16000, (0.2,)), sr=16000, lengths=[4000],
+    process_tokens(_toks(16000, (0.2,)), sr=16000, n_samples=4000,
                    retime=RetimeSpec(cache=False), pitch=PitchSpec(), level=LevelSpecPolicy(),
                    target_f0=130, progress=False)
     assert not (tmp_path / "xdg").exists()
