@@ -104,6 +104,22 @@ def _sf_reason(exc: Exception) -> str:
     return msg.strip()
 
 
+def _info(path: Path):
+    """soundfile's header info, or the reason a file is not audio at all."""
+    import soundfile as sf
+
+    if not path.exists():
+        raise AudioFileProblem("file not found")
+    if path.is_dir():
+        raise AudioFileProblem("is a folder, not an audio file")
+    if path.stat().st_size == 0:
+        raise AudioFileProblem("empty file (0 bytes)")
+    try:
+        return sf.info(str(path))
+    except Exception as exc:  # soundfile raises LibsndfileError (a RuntimeError) and others
+        raise AudioFileProblem(f"not a readable audio file (libsndfile: {_sf_reason(exc)})") from None
+
+
 def probe_audio(path: str | Path) -> tuple[int, int, int]:
     """(frames, sample rate, channels) from the header, without reading the samples.
 
@@ -113,19 +129,8 @@ def probe_audio(path: str | Path) -> tuple[int, int, int]:
         Missing, a folder, empty, not audio, no samples, or truncated (the WAV header
         promises more frames than the file holds).
     """
-    import soundfile as sf
-
     path = Path(path)
-    if not path.exists():
-        raise AudioFileProblem("file not found")
-    if path.is_dir():
-        raise AudioFileProblem("is a folder, not an audio file")
-    if path.stat().st_size == 0:
-        raise AudioFileProblem("empty file (0 bytes)")
-    try:
-        info = sf.info(str(path))
-    except Exception as exc:  # soundfile raises LibsndfileError (a RuntimeError) and others
-        raise AudioFileProblem(f"not a readable audio file (libsndfile: {_sf_reason(exc)})") from None
+    info = _info(path)
     if info.frames <= 0:
         raise AudioFileProblem("holds no samples (0 frames)")
     promised = wav_header_frames(path)
@@ -153,16 +158,7 @@ def read_audio(path: str | Path) -> tuple[np.ndarray, int]:
     import soundfile as sf
 
     path = Path(path)
-    if not path.exists():
-        raise AudioFileProblem("file not found")
-    if path.is_dir():
-        raise AudioFileProblem("is a folder, not an audio file")
-    if path.stat().st_size == 0:
-        raise AudioFileProblem("empty file (0 bytes)")
-    try:
-        info = sf.info(str(path))
-    except Exception as exc:
-        raise AudioFileProblem(f"not a readable audio file (libsndfile: {_sf_reason(exc)})") from None
+    info = _info(path)
     try:
         data, fs = sf.read(str(path), dtype="float64", always_2d=True)
     except Exception as exc:

@@ -966,6 +966,142 @@ def _load_material(recipe: Recipe, n_needed: int, rng: np.random.Generator) -> _
     return _Material(groups=groups, where=where, generated=True)
 
 
+def _seed_and_entropy(rng: int | np.random.Generator | None, recipe: Recipe) -> tuple[int | None, int]:
+    """The seed written into the design's provenance and the entropy every stage derives from."""
+    if rng is None:
+        return int(recipe.seed), int(recipe.seed)
+    if isinstance(rng, np.random.Generator):
+        return None, int(rng.integers(0, 2**63))
+    return int(rng), int(rng)
+
+
+def _given_material(material: list[Group], recipe: Recipe) -> _Material:
+    """Top-level groups handed to make_design, checked against the top level's size."""
+    top_name = recipe.hierarchy.names[-1]
+    top_units = recipe.hierarchy.units_per(top_name)
+    groups = [tuple(str(x) for x in g) for g in material]
+    if not groups:
+        raise DesignError("material: the list of groups is empty")
+    for i, g in enumerate(groups):
+        if len(g) != top_units:
+            raise DesignError(
+                f"material group {i + 1}: {len(g)} units, a {top_name} needs {top_units}"
+            )
+    return _Material(
+        groups=groups,
+        where=[[f"material group {g + 1}"] * top_units for g in range(len(groups))],
+        # pre-generated material is a stream: keep its order (see generate_material)
+        generated=recipe.material.generate is not None,
+    )
+
+
+def _scrambled_plans(cond: Any, recipe: Recipe, mat: _Material, base_labels: list[list[str]],
+                     tokens: list[list[str]], *, lead_units: int,
+                     orig_pairs_cache: dict[str, set], rng: np.random.Generator) -> list[TrialPlan]:
+    """One scramble condition's trials: the base occurrences' chunks at ``cond.level``
+    rearranged (lead-in and analysed part separately), each (label, token) pair kept whole."""
+    h = recipe.hierarchy
+    n_trials = len(base_labels)
+    lead = 1 if lead_units else 0
+    level = cond.level
+    k = h.units_per(level)
+    li = h.names.index(level)
+    parent = h.levels[li].size  # chunks per group of the level above
+    chunks_lead: list[Chunk] = []
+    chunks_main: list[Chunk] = []
+    for t in range(n_trials):
+        pairs = list(zip(base_labels[t], tokens[t]))
+        for s in range(0, len(pairs), k):
+            (chunks_lead if s < lead_units else chunks_main).append(tuple(pairs[s : s + k]))
+    if level not in orig_pairs_cache:
+        op = set()
+        pk = parent * k
+        for g in mat.groups:
+            for s in range(k, len(g), k):
+                if s % pk:
+                    op.add((tuple(g[s - k : s]), tuple(g[s : s + k])))
+        orig_pairs_cache[level] = op
+    pools = [chunks_lead, chunks_main] if lead else [chunks_main]
+    seg = [lead_units // k, (len(base_labels[0]) - lead_units) // k] if lead else [
+        len(base_labels[0]) // k
+    ]
+    arranged = _scramble(
+        name=cond.name,
+        level=level,
+        pools=pools,
+        seg_len=seg,
+        n_trials=n_trials,
+        parent=parent,
+        orig_pairs=orig_pairs_cache[level],
+        no_adjacent=recipe.constraints.no_adjacent_repeat,
+        max_attempts=recipe.constraints.max_attempts,
+        rng=rng,
+    )
+    return [TrialPlan(cond.name, cond.kind, t + 1,
+                      tuple(UnitRef(lab, tok, False) for c in trial for lab, tok in c),
+                      lead_units, ())
+            for t, trial in enumerate(arranged)]
+
+
+def _counts(plans: list[TrialPlan], base_labels: list[list[str]], pool: Mapping[str, Sequence[str]]):
+    """Label counts per condition (analysed part and lead-in), token uses, token -> label."""
+    label_counts: dict[str, dict[str, int]] = {}
+    lead_counts: dict[str, dict[str, int]] = {}
+    token_counts: dict[str, int] = {}
+    token_labels: dict[str, str] = {}
+    used = sorted({lab for labs in base_labels for lab in labs})
+    for lab in used:
+        for tok in sorted(set(pool[lab])):
+            token_counts[tok] = 0
+            token_labels[tok] = lab
+    for p in plans:
+        c = label_counts.setdefault(p.condition, {})
+        lc = lead_counts.setdefault(p.condition, {})
+        for i, u in enumerate(p.units):
+            d = lc if i < p.lead_in_units else c
+            d[u.label] = d.get(u.label, 0) + 1
+            token_counts[u.token_id] = token_counts.get(u.token_id, 0) + 1
+    label_counts = {c: dict(sorted(v.items())) for c, v in label_counts.items()}
+    lead_counts = {c: dict(sorted(v.items())) for c, v in lead_counts.items()}
+    return label_counts, lead_counts, token_counts, token_labels
+
+
+def _presentations(recipe: Recipe, n_trials: int, entropy: int) -> tuple[list[Presentation], list[int]]:
+    """Every list's playing order (Williams square over condition blocks, repeats placed), and
+    the gaps between spaced hearings."""
+    names = [c.name for c in recipe.conditions]
+    rows = williams_rows(len(names))
+    rep = recipe.repeat
+    rep_conds = set(rep.conditions) if rep else set()
+    presentations: list[Presentation] = []
+    spacing: list[int] = []
+    for li_ in range(1, recipe.trials.lists + 1):
+        g = _child(entropy, _STAGE_LISTS, li_)
+        pos = 0
+        for ci in rows[(li_ - 1) % len(rows)]:
+            cname = names[ci]
+            reps = rep.times if (rep and cname in rep_conds) else 0
+            trial_ids = [
+                t for t in range(1, n_trials + 1)
+                if not recipe.trials.rotate_items or (t - 1 + li_ - 1) % len(names) == ci
+            ]
+            if not trial_ids:
+                continue
+            block, gap = _block(
+                trial_ids,
+                reps,
+                rep.placement if rep else "adjacent",
+                g,
+                recipe.constraints.max_attempts,
+            )
+            if gap is not None and rep and rep.placement == "spaced":
+                spacing.append(gap)
+            for t, r in block:
+                pos += 1
+                presentations.append(Presentation(li_, pos, cname, t, r))
+    return presentations, spacing
+
+
 def make_design(
     recipe: Recipe,
     pool: Mapping[str, Sequence[str]],
@@ -997,15 +1133,7 @@ def make_design(
         Malformed material; labels without tokens (all listed); constraints that cannot be met
         (with the numbers that make them impossible).
     """
-    if rng is None:
-        seed: int | None = int(recipe.seed)
-        entropy = seed
-    elif isinstance(rng, np.random.Generator):
-        seed = None
-        entropy = int(rng.integers(0, 2**63))
-    else:
-        seed = int(rng)
-        entropy = seed
+    seed, entropy = _seed_and_entropy(rng, recipe)
     h = recipe.hierarchy
     top_name = h.names[-1]
     top_units = h.units_per(top_name)
@@ -1018,20 +1146,7 @@ def make_design(
 
     # ---- material
     if material is not None:
-        groups = [tuple(str(x) for x in g) for g in material]
-        if not groups:
-            raise DesignError("material: the list of groups is empty")
-        for i, g in enumerate(groups):
-            if len(g) != top_units:
-                raise DesignError(
-                    f"material group {i + 1}: {len(g)} units, a {top_name} needs {top_units}"
-                )
-        mat = _Material(
-            groups=groups,
-            where=[[f"material group {g + 1}"] * top_units for g in range(len(groups))],
-            # pre-generated material is a stream: keep its order (see generate_material)
-            generated=recipe.material.generate is not None,
-        )
+        mat = _given_material(material, recipe)
     else:
         mat = _load_material(recipe, n_needed, _child(entropy, _STAGE_MATERIAL))
     _check_labels(mat, pool)
@@ -1087,97 +1202,16 @@ def make_design(
                     )
                 )
             continue
-        level = cond.level
-        k = h.units_per(level)
-        li = h.names.index(level)
-        parent = h.levels[li].size  # chunks per group of the level above
-        chunks_lead: list[Chunk] = []
-        chunks_main: list[Chunk] = []
-        for t in range(n_trials):
-            pairs = list(zip(base_labels[t], tokens[t]))
-            for s in range(0, len(pairs), k):
-                (chunks_lead if s < lead_units else chunks_main).append(tuple(pairs[s : s + k]))
-        if level not in orig_pairs_cache:
-            op = set()
-            pk = parent * k
-            for g in mat.groups:
-                for s in range(k, len(g), k):
-                    if s % pk:
-                        op.add((tuple(g[s - k : s]), tuple(g[s : s + k])))
-            orig_pairs_cache[level] = op
-        pools = [chunks_lead, chunks_main] if lead else [chunks_main]
-        seg = [lead_units // k, (len(base_labels[0]) - lead_units) // k] if lead else [
-            len(base_labels[0]) // k
-        ]
         key = [_STAGE_SCRAMBLE, _name_key(cond.name)]
         stage_keys[f"scramble:{cond.name}"] = key
-        arranged = _scramble(
-            name=cond.name,
-            level=level,
-            pools=pools,
-            seg_len=seg,
-            n_trials=n_trials,
-            parent=parent,
-            orig_pairs=orig_pairs_cache[level],
-            no_adjacent=recipe.constraints.no_adjacent_repeat,
-            max_attempts=recipe.constraints.max_attempts,
-            rng=_child(entropy, *key),
-        )
-        for t, trial in enumerate(arranged):
-            units = tuple(UnitRef(lab, tok, False) for c in trial for lab, tok in c)
-            plans.append(TrialPlan(cond.name, cond.kind, t + 1, units, lead_units, ()))
+        plans += _scrambled_plans(cond, recipe, mat, base_labels, tokens, lead_units=lead_units,
+                                  orig_pairs_cache=orig_pairs_cache, rng=_child(entropy, *key))
 
     # ---- counts
-    label_counts: dict[str, dict[str, int]] = {}
-    lead_counts: dict[str, dict[str, int]] = {}
-    token_counts: dict[str, int] = {}
-    token_labels: dict[str, str] = {}
-    used = sorted({lab for labs in base_labels for lab in labs})
-    for lab in used:
-        for tok in sorted(set(pool[lab])):
-            token_counts[tok] = 0
-            token_labels[tok] = lab
-    for p in plans:
-        c = label_counts.setdefault(p.condition, {})
-        lc = lead_counts.setdefault(p.condition, {})
-        for i, u in enumerate(p.units):
-            d = lc if i < p.lead_in_units else c
-            d[u.label] = d.get(u.label, 0) + 1
-            token_counts[u.token_id] = token_counts.get(u.token_id, 0) + 1
-    label_counts = {c: dict(sorted(v.items())) for c, v in label_counts.items()}
-    lead_counts = {c: dict(sorted(v.items())) for c, v in lead_counts.items()}
+    label_counts, lead_counts, token_counts, token_labels = _counts(plans, base_labels, pool)
 
     # ---- lists
-    names = [c.name for c in recipe.conditions]
-    rows = williams_rows(len(names))
-    rep = recipe.repeat
-    rep_conds = set(rep.conditions) if rep else set()
-    presentations: list[Presentation] = []
-    spacing: list[int] = []
-    for li_ in range(1, recipe.trials.lists + 1):
-        g = _child(entropy, _STAGE_LISTS, li_)
-        pos = 0
-        for ci in rows[(li_ - 1) % len(rows)]:
-            cname = names[ci]
-            reps = rep.times if (rep and cname in rep_conds) else 0
-            trial_ids = [
-                t for t in range(1, n_trials + 1)
-                if not recipe.trials.rotate_items or (t - 1 + li_ - 1) % len(names) == ci
-            ]
-            if not trial_ids:
-                continue
-            block, gap = _block(
-                trial_ids,
-                reps,
-                rep.placement if rep else "adjacent",
-                g,
-                recipe.constraints.max_attempts,
-            )
-            if gap is not None and rep and rep.placement == "spaced":
-                spacing.append(gap)
-            for t, r in block:
-                pos += 1
-                presentations.append(Presentation(li_, pos, cname, t, r))
+    presentations, spacing = _presentations(recipe, n_trials, entropy)
     stage_keys["lists"] = [_STAGE_LISTS, "<list number>"]
     if spacing and min(spacing) < _MIN_REPEAT_GAP:
         msg = (

@@ -386,26 +386,43 @@ def kruskal(groups: list[np.ndarray]) -> RankTest:
 # ---------------------------------------------------------------------------------------------
 # Multiple testing
 # ---------------------------------------------------------------------------------------------
+def _adjusted(p: np.ndarray | list[float], adjust) -> np.ndarray:
+    """Apply ``adjust`` (sorted finite p -> adjusted, same order) to the finite values of ``p``."""
+    p = np.asarray(p, dtype=np.float64)
+    out = np.full(p.shape, np.nan)
+    ok = np.isfinite(p)
+    q = p[ok]
+    if q.size == 0:
+        return out
+    order = np.argsort(q, kind="stable")
+    res = np.empty(q.size)
+    res[order] = adjust(q[order])
+    out[ok] = res
+    return out
+
+
+def _holm_sorted(q: np.ndarray) -> np.ndarray:
+    m = q.size
+    adj = np.empty(m)
+    running = 0.0
+    for i in range(m):
+        running = max(running, min(1.0, (m - i) * q[i]))
+        adj[i] = running
+    return adj
+
+
+def _bh_sorted(q: np.ndarray) -> np.ndarray:
+    m = q.size
+    scaled = q * m / np.arange(1, m + 1)
+    return np.minimum(np.minimum.accumulate(scaled[::-1])[::-1], 1.0)
+
+
 def holm(p: np.ndarray | list[float]) -> np.ndarray:
     """Holm (1979) step-down adjusted p-values (monotone, capped at 1); NaN stays NaN.
 
     Works on any shape: the family is every finite value of ``p``.
     """
-    p = np.asarray(p, dtype=np.float64)
-    out = np.full(p.shape, np.nan)
-    ok = np.isfinite(p)
-    q = p[ok]
-    m = q.size
-    if m == 0:
-        return out
-    order = np.argsort(q, kind="stable")
-    adj = np.empty(m)
-    running = 0.0
-    for i, idx in enumerate(order):
-        running = max(running, min(1.0, (m - i) * q[idx]))
-        adj[idx] = running
-    out[ok] = adj
-    return out
+    return _adjusted(p, _holm_sorted)
 
 
 def fdr_bh(p: np.ndarray | list[float]) -> np.ndarray:
@@ -413,17 +430,246 @@ def fdr_bh(p: np.ndarray | list[float]) -> np.ndarray:
 
     Works on any shape: the family is every finite value of ``p``.
     """
-    p = np.asarray(p, dtype=np.float64)
-    out = np.full(p.shape, np.nan)
-    ok = np.isfinite(p)
-    q = p[ok]
-    m = q.size
-    if m == 0:
-        return out
-    order = np.argsort(q, kind="stable")
-    scaled = q[order] * m / np.arange(1, m + 1)
-    adj = np.minimum.accumulate(scaled[::-1])[::-1]
-    res = np.empty(m)
-    res[order] = np.minimum(adj, 1.0)
-    out[ok] = res
-    return out
+    return _adjusted(p, _bh_sorted)
+
+
+# ---------------------------------------------------------------------------------------------
+# Circular differences and sign-flip tests (the response analysis: phase across hearings and
+# across participants).  Appended for issue 11; every function works over trailing axes: the
+# first axis holds the pairs, trials or participants, all others are carried through.
+# ---------------------------------------------------------------------------------------------
+__all__ += ["wrap_angle", "CircularDifference", "circular_difference",
+            "circular_one_sample", "SignFlipTest", "sign_flip_test"]
+
+
+def wrap_angle(a: Any) -> Any:
+    """Angles (radians) wrapped into (-pi, pi]."""
+    w = np.pi - np.mod(np.pi - np.asarray(a, dtype=np.float64), 2.0 * np.pi)
+    return _out(w)
+
+
+def _phasors(z: np.ndarray, what: str, *, need: int) -> np.ndarray:
+    """Unit phasors (n, K) from complex values or real angles (radians), first axis kept."""
+    z = np.asarray(z)
+    if z.ndim == 0 or z.shape[0] < need:
+        raise StatsError(f"{what} needs at least {need} values along its first axis, got shape "
+                         f"{z.shape}")
+    if np.iscomplexobj(z):
+        mag = np.abs(z)
+        u = z / np.where(mag > 0, mag, 1.0)
+    else:
+        u = np.exp(1j * z.astype(np.float64))
+    return u.reshape(z.shape[0], -1).astype(np.complex128)
+
+
+def _all_flips(n: int) -> np.ndarray:
+    """Every 0/1 pattern of length n, shape (2**n, n)."""
+    codes = np.arange(2 ** n, dtype=np.int64)[:, None]
+    return ((codes >> np.arange(n, dtype=np.int64)[None, :]) & 1).astype(np.float64)
+
+
+def _flips(n: int, n_perm: int, rng: np.random.Generator) -> tuple[np.ndarray, bool]:
+    """0/1 flip patterns: all of them when 2**n <= n_perm (exact test), else n_perm random."""
+    if n <= 20 and 2 ** n <= n_perm:
+        return _all_flips(n), True
+    return rng.integers(0, 2, size=(n_perm, n)).astype(np.float64), False
+
+
+def _perm_p(stat: np.ndarray, obs: np.ndarray, exact: bool) -> np.ndarray:
+    """p from a permutation distribution ``stat`` (R, K) and observed ``obs`` (K,)."""
+    tol = 1e-12 * np.maximum(1.0, np.abs(obs))
+    ge = np.sum(stat >= obs[None, :] - tol[None, :], axis=0)
+    if exact:  # the identity is one of the patterns
+        return ge / stat.shape[0]
+    return (1.0 + ge) / (1.0 + stat.shape[0])
+
+
+def _boot_ci(boot: np.ndarray, centre: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:
+    """Percentile interval of circular bootstrap values around ``centre`` (radians)."""
+    dev = np.asarray(wrap_angle(boot - centre[None, :]))
+    lo = centre + np.quantile(dev, alpha / 2.0, axis=0)
+    hi = centre + np.quantile(dev, 1.0 - alpha / 2.0, axis=0)
+    return lo, hi
+
+
+@dataclass(frozen=True)
+class CircularDifference:
+    """A phase difference ``second - first`` with its bootstrap interval and permutation p.
+
+    Angles in radians (floats for one test, arrays over the trailing axes otherwise).
+    ``difference`` is wrapped into (-pi, pi]; ``ci_low <= difference <= ci_high`` (the
+    interval is taken around the estimate, so its ends may pass +-pi); ``p`` is two-sided
+    (|difference| as extreme as observed when the hearings are exchangeable); ``n`` counts
+    pairs (paired) or the smaller group (unpaired); ``exact`` is True when every permutation
+    was enumerated.
+    """
+
+    difference: Any
+    ci_low: Any
+    ci_high: Any
+    p: Any
+    mean_first: Any
+    mean_second: Any
+    n: int
+    paired: bool
+    exact: bool
+    n_boot: int
+    n_perm: int
+
+
+def circular_difference(first: np.ndarray, second: np.ndarray, *, paired: bool,
+                        rng: np.random.Generator, n_boot: int = 2000, n_perm: int = 2000,
+                        alpha: float = 0.05) -> CircularDifference:
+    """Difference of two circular means, with a bootstrap interval and a permutation test.
+
+    Parameters
+    ----------
+    first, second : ndarray, complex (or real angles in radians), shape (n, ...)
+        One value per item (paired: row i of both is the same item) or per trial (unpaired:
+        the two may differ in length).  Complex values are reduced to their phase, so the
+        circular mean is the angle of the mean unit vector.
+    paired : bool
+        Paired: the bootstrap resamples items (both values of an item together) and the
+        permutation swaps the two values within items (all 2**n swaps when
+        ``2**n <= n_perm``).  Unpaired: each group is resampled on its own and the
+        permutation reshuffles the pooled values.
+    rng : numpy.random.Generator
+    n_boot, n_perm : int
+        Bootstrap resamples and permutations.
+    alpha : float
+        1 - coverage of the percentile interval (0.05: 95 %).
+
+    Returns
+    -------
+    CircularDifference
+        Angles in radians over the trailing axes of the input.
+    """
+    if n_boot < 10 or n_perm < 10 or not 0 < alpha < 1:
+        raise StatsError(f"circular_difference needs n_boot, n_perm >= 10 and 0 < alpha < 1, "
+                         f"got {n_boot}, {n_perm}, {alpha}")
+    shape = np.asarray(first).shape[1:]
+    u1 = _phasors(first, "circular_difference (first)", need=2)
+    u2 = _phasors(second, "circular_difference (second)", need=2)
+    if u1.shape[1] != u2.shape[1] or (paired and u1.shape[0] != u2.shape[0]):
+        raise StatsError(f"circular_difference: shapes {np.asarray(first).shape} and "
+                         f"{np.asarray(second).shape} do not match"
+                         + (" (paired: one row per item in both)" if paired else ""))
+    m1, m2 = u1.sum(axis=0), u2.sum(axis=0)
+    d = np.angle(m2 * np.conj(m1))
+    n1, n2 = u1.shape[0], u2.shape[0]
+    if paired:
+        w = rng.multinomial(n1, np.full(n1, 1.0 / n1), size=n_boot).astype(np.float64)
+        bd = np.angle((w @ u2) * np.conj(w @ u1))
+        flips, exact = _flips(n1, n_perm, rng)
+        diff = u2 - u1
+        sw = flips @ diff
+        pd = np.angle((m2 - sw) * np.conj(m1 + sw))
+    else:
+        w1 = rng.multinomial(n1, np.full(n1, 1.0 / n1), size=n_boot).astype(np.float64)
+        w2 = rng.multinomial(n2, np.full(n2, 1.0 / n2), size=n_boot).astype(np.float64)
+        bd = np.angle((w2 @ u2) * np.conj(w1 @ u1))
+        pooled = np.concatenate([u1, u2], axis=0)
+        keys = rng.random((n_perm, n1 + n2))
+        pick = (np.argsort(keys, axis=1) < n1).astype(np.float64)  # n1 ones per row
+        g1 = pick @ pooled
+        pd = np.angle((m1 + m2 - g1) * np.conj(g1))
+        exact = False
+    lo, hi = _boot_ci(bd, d, alpha)
+    p = _perm_p(np.abs(pd), np.abs(d), exact)
+    rs = (lambda a: _out(np.asarray(a).reshape(shape)))
+    return CircularDifference(difference=rs(d), ci_low=rs(lo), ci_high=rs(hi), p=rs(p),
+                              mean_first=rs(np.angle(m1)), mean_second=rs(np.angle(m2)),
+                              n=int(n1 if paired else min(n1, n2)), paired=bool(paired),
+                              exact=bool(exact), n_boot=int(n_boot),
+                              n_perm=int(flips.shape[0] if paired else n_perm))
+
+
+def circular_one_sample(d: np.ndarray, *, rng: np.random.Generator, n_boot: int = 2000,
+                        n_perm: int = 10000, alpha: float = 0.05) -> CircularDifference:
+    """Is the circular mean of angular differences away from 0?  Sign-flip test + bootstrap.
+
+    For per-participant phase differences (second - first hearing): under the null the two
+    hearings are exchangeable within each participant, so each difference is as likely to be
+    ``+d`` as ``-d``.  The statistic is |circular mean| of the differences; the null
+    distribution flips the signs (all 2**n patterns when ``2**n <= n_perm``).  The interval
+    is a bootstrap over participants.
+
+    Parameters
+    ----------
+    d : ndarray, real angles in radians (or complex), shape (n, ...)
+
+    Returns
+    -------
+    CircularDifference
+        ``difference`` is the circular mean of ``d``; ``mean_first`` is 0 and
+        ``mean_second`` the same mean.
+    """
+    if n_boot < 10 or n_perm < 10 or not 0 < alpha < 1:
+        raise StatsError(f"circular_one_sample needs n_boot, n_perm >= 10 and 0 < alpha < 1, "
+                         f"got {n_boot}, {n_perm}, {alpha}")
+    shape = np.asarray(d).shape[1:]
+    v = _phasors(d, "circular_one_sample", need=2)
+    n = v.shape[0]
+    tot = v.sum(axis=0)
+    mean = np.angle(tot)
+    w = rng.multinomial(n, np.full(n, 1.0 / n), size=n_boot).astype(np.float64)
+    lo, hi = _boot_ci(np.angle(w @ v), mean, alpha)
+    flips, exact = _flips(n, n_perm, rng)
+    flipped = tot[None, :] + flips @ (np.conj(v) - v)
+    p = _perm_p(np.abs(np.angle(flipped)), np.abs(mean), exact)
+    rs = (lambda a: _out(np.asarray(a).reshape(shape)))
+    return CircularDifference(difference=rs(mean), ci_low=rs(lo), ci_high=rs(hi), p=rs(p),
+                              mean_first=rs(np.zeros(v.shape[1])), mean_second=rs(mean), n=int(n),
+                              paired=True, exact=bool(exact), n_boot=int(n_boot),
+                              n_perm=int(flips.shape[0]))
+
+
+@dataclass(frozen=True)
+class SignFlipTest:
+    """One-sample sign-flip permutation test of a mean against 0 (paired differences)."""
+
+    mean: Any
+    p: Any
+    n: int
+    exact: bool
+    alternative: str
+
+
+def sign_flip_test(x: np.ndarray, *, rng: np.random.Generator, n_perm: int = 10000,
+                   alternative: str = "two-sided") -> SignFlipTest:
+    """Sign-flip permutation test of ``mean(x) = 0`` over the first axis.
+
+    For paired differences (e.g. a condition contrast per participant): under the null each
+    difference is symmetric about 0, so flipping its sign leaves the distribution unchanged.
+    All 2**n patterns are used when ``2**n <= n_perm`` (exact), else ``n_perm`` random ones
+    (p = (1 + count) / (1 + n_perm)).  NaN rows are not allowed.
+
+    Parameters
+    ----------
+    x : ndarray, float, shape (n, ...)
+    alternative : {"two-sided", "greater", "less"}
+    """
+    if alternative not in ("two-sided", "greater", "less"):
+        raise StatsError(f"sign_flip_test: alternative must be 'two-sided', 'greater' or "
+                         f"'less', got {alternative!r}")
+    x = np.asarray(x, dtype=np.float64)
+    if x.ndim == 0 or x.shape[0] < 2:
+        raise StatsError(f"sign_flip_test needs at least 2 values along axis 0, got shape "
+                         f"{x.shape}")
+    if not np.all(np.isfinite(x)):
+        raise StatsError("sign_flip_test: x holds NaN or infinite values")
+    shape = x.shape[1:]
+    xf = x.reshape(x.shape[0], -1)
+    n = xf.shape[0]
+    flips, exact = _flips(n, n_perm, rng)
+    signs = 1.0 - 2.0 * flips
+    stat = signs @ xf / n
+    obs = xf.mean(axis=0)
+    if alternative == "two-sided":
+        p = _perm_p(np.abs(stat), np.abs(obs), exact)
+    elif alternative == "greater":
+        p = _perm_p(stat, obs, exact)
+    else:
+        p = _perm_p(-stat, -obs, exact)
+    return SignFlipTest(mean=_out(obs.reshape(shape)), p=_out(np.asarray(p).reshape(shape)),
+                        n=int(n), exact=bool(exact), alternative=alternative)

@@ -230,6 +230,14 @@ def test_holm_hand_example():
     assert np.isnan(vs.holm([np.nan, 0.2])[0])
 
 
+def test_fdr_bh_hand_example():
+    # p = .01 .04 .03 .005 -> BH q = .02 .04 .04 .02: sorted p x 4/rank = .02 .02 .04 .04,
+    # running minimum from the top (Benjamini & Hochberg 1995 step-up) [calc]
+    assert np.allclose(vs.fdr_bh([0.01, 0.04, 0.03, 0.005]), [0.02, 0.04, 0.04, 0.02])
+    q = vs.fdr_bh(np.array([[0.5, np.nan], [0.01, 0.9]]))
+    assert q.shape == (2, 2) and np.isnan(q[0, 1]) and q[1, 1] == pytest.approx(0.9)
+
+
 def _design():
     grid = grid_from_numbers(unit_duration=0.25, levels=[("line", 4), ("pair", 2)], sr=16000,
                              n_top_groups=4, unit_name="syllable")
