@@ -16,6 +16,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from .timing import window_samples
+
 __all__ = [
     "db",
     "rms_dbfs",
@@ -88,7 +90,7 @@ def peak_dbfs(x: np.ndarray) -> float:
 def smoothed_envelope(x: np.ndarray, *, sr: int, smooth: float = 0.005) -> np.ndarray:
     """|x| smoothed by a centred moving average of ``smooth`` seconds (same length as x)."""
     x = np.abs(np.asarray(x, dtype=np.float64))
-    n = max(1, int(round(smooth * sr)))
+    n = window_samples(smooth, sr=sr, minimum=1)
     if n == 1 or x.size < 2:
         return x
     kernel = np.ones(n) / n
@@ -137,7 +139,7 @@ def praat_f0(
     import parselmouth
 
     x = np.asarray(x, dtype=np.float64)
-    if x.size < int(3.0 / floor * sr) + 2:
+    if x.size < window_samples(3.0 / floor, sr=sr) + 2:  # Praat needs 3 periods of the floor
         return np.zeros(0), np.zeros(0)
     snd = parselmouth.Sound(x, sampling_frequency=float(sr))
     pitch = snd.to_pitch_ac(time_step=time_step, pitch_floor=floor, pitch_ceiling=ceiling)
@@ -177,7 +179,7 @@ def raised_cosine_fade(x: np.ndarray, *, sr: int, fade: float) -> np.ndarray:
     y = np.array(x, dtype=np.float64, copy=True)
     if y.size == 0:
         return y
-    L = max(2, int(round(fade * sr)))
+    L = window_samples(fade, sr=sr, minimum=2)
     L = min(L, max(2, y.size // 2))
     ramp = 0.5 - 0.5 * np.cos(np.pi * np.arange(L) / (L - 1))
     y[:L] *= ramp

@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 
 from .grid import RateTable
-from .timing import seconds_to_samples, unit_start
+from .timing import seconds_to_samples, table_seconds, unit_start
 
 __all__ = ["trial_layout", "assemble_trial", "unit_rows", "fit_to_slot"]
 
@@ -110,10 +110,9 @@ def unit_rows(
             "index": u.index,
             "position": u.position,
             "label": u.label,
-            "onset": round(int(starts[u.first_unit]) / sr, 6),
-            "duration": round(
-                (int(starts[u.first_unit + u.n_units]) - int(starts[u.first_unit])) / sr, 6
-            ),
+            "onset": table_seconds(starts[u.first_unit], sr=sr),
+            "duration": table_seconds(starts[u.first_unit + u.n_units] - starts[u.first_unit],
+                                      sr=sr),
             "token": u.token,
             "lead_in": int(u.lead_in),
             "reversed": int(u.reversed),

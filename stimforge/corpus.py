@@ -60,7 +60,7 @@ from .audio_io import AudioFileProblem, sha256_file
 from .audio_io import read_audio as _read_native
 from .errors import CorpusError
 from .recipe import CorpusSpec, QCSpec, TrimSpec
-from .timing import exact, round_half_up, seconds_to_samples
+from .timing import exact, round_half_up, seconds_to_samples, window_samples
 
 __all__ = [
     "Token",
@@ -288,7 +288,7 @@ def read_audio(path: str | Path, *, sr: int) -> np.ndarray:
 
 # --------------------------------------------------------------------------- processing
 def _noise_floor(x: np.ndarray, sr: int) -> float:
-    n = max(1, int(round(NOISE_FRAME * sr)))
+    n = window_samples(NOISE_FRAME, sr=sr, minimum=1)
     k = x.size // n
     if k == 0:
         frames = np.sqrt(np.mean(x * x))[None]
@@ -695,7 +695,7 @@ def load_textgrid(
         a = round_half_up(exact(max(t0, 0.0)) * fs)
         b = round_half_up(exact(t1) * fs)
         why = _check_label(lab)
-        if n_native < b <= n_native + max(1, round(END_SLACK * fs)):
+        if n_native < b <= n_native + window_samples(END_SLACK, sr=fs, minimum=1):
             b = n_native  # TextGrid end times are often rounded past the last sample
         if why is None and b > n_native:
             why = (

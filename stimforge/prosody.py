@@ -22,6 +22,7 @@ import numpy as np
 
 from .acoustics import active_mask, praat_f0, raised_cosine_fade, rms_dbfs, semitones
 from .errors import AudioInputError, RetimeError
+from .timing import window_samples
 
 __all__ = [
     "F0Summary",
@@ -95,7 +96,7 @@ def f0_summary(x: np.ndarray, *, sr: int, context: float = 0.0) -> F0Summary:
     """
     x = np.asarray(x, dtype=np.float64)
     if context > 0:
-        z = np.zeros(int(round(context * sr)))
+        z = np.zeros(window_samples(context, sr=sr))
         x = np.concatenate([z, x, z])
     times, f0 = praat_f0(x, sr=sr)
     voiced = f0[np.isfinite(f0)]

@@ -52,7 +52,7 @@ from .prosody import (
     peak_guard_gain_db,
 )
 from .recipe import LevelSpecPolicy, PitchSpec, RetimeSpec
-from .timing import seconds_to_samples
+from .timing import seconds_to_samples, window_samples
 
 __all__ = [
     "TokenRecord",
@@ -370,7 +370,7 @@ def world_analysis(
 
     x = _validate_token(x, sr=sr)
     params = _analysis_params(retime, sr)
-    pad = int(round(ANALYSIS_PAD_S * sr))
+    pad = window_samples(ANALYSIS_PAD_S, sr=sr)
 
     def compute() -> WorldAnalysis:
         xp = np.ascontiguousarray(np.concatenate([np.zeros(pad), x, np.zeros(pad)]))
@@ -517,7 +517,7 @@ def _overlap_add_backend(req: BackendRequest) -> BackendResult:
             f"overlap-add: token {req.token_id!r} needs stretch factor {factor:.3f}, beyond what "
             f"Praat's overlap-add can do ({lo:.3f}..{hi:g}); use backend 'world' or 'cut-pad'"
         )
-    pad = int(round(ANALYSIS_PAD_S * req.sr))
+    pad = window_samples(ANALYSIS_PAD_S, sr=req.sr)
     xp = np.concatenate([np.zeros(pad), req.x, np.zeros(pad)])
     warns: list[str] = []
     with _PRAAT_LOCK:
