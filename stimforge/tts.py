@@ -263,6 +263,76 @@ _SAFE = re.compile(r"[^\w\-]+")
 _RESERVED = ("label", "file", "voice", "rate_wpm", "pitch", "text", "gain_db")
 
 
+def _check_entries(entries: list[TTSEntry]) -> None:
+    """One CorpusError listing every unusable label and reserved metadata key."""
+    problems = []
+    for i, e in enumerate(entries):
+        lab = e.label
+        if not isinstance(lab, str) or not lab.strip():
+            problems.append(f"entry {i + 1}: empty label {lab!r}")
+        elif re.search(r"[\s|#]", lab):
+            problems.append(
+                f"entry {i + 1}: label {lab!r} contains whitespace, '|' or '#', which the material "
+                "text format reserves"
+            )
+        for k in e.metadata:
+            if k in _RESERVED:
+                problems.append(f"entry {i + 1}: metadata key {k!r} clashes with a reserved column")
+    if problems:
+        raise CorpusError("make_corpus: " + "; ".join(problems))
+
+
+def _file_names(entries: list[TTSEntry], *, audio_dir: str) -> list[str]:
+    """Relative WAV paths: the label's stem, numbered when a label has several entries."""
+    counts: dict[str, int] = {}
+    for e in entries:
+        counts[e.label] = counts.get(e.label, 0) + 1
+    seen: dict[str, int] = {}
+    used: set[str] = set()
+    rel_files = []
+    for e in entries:
+        if e.name is not None:
+            stem = _SAFE.sub("_", str(e.name)).strip("_") or "token"
+        else:
+            stem = _SAFE.sub("_", e.label).strip("_") or "token"
+            if counts[e.label] > 1:
+                seen[e.label] = seen.get(e.label, 0) + 1
+                stem = f"{stem}_{seen[e.label]}"
+        base, k = stem, 1
+        while stem.lower() in used:
+            k += 1
+            stem = f"{base}-{k}"
+        used.add(stem.lower())
+        rel_files.append(f"{audio_dir}/{stem}.wav" if audio_dir else f"{stem}.wav")
+    return rel_files
+
+
+def _render(entries: list[TTSEntry], *, voice: str, rate_wpm: int, pitch: int,
+            progress: bool) -> list[tuple]:
+    """Synthesise every entry: (entry, voice, rate, pitch, text, samples, sr) each."""
+    from tqdm.auto import tqdm
+
+    rendered = []
+    for i, e in enumerate(tqdm(entries, desc="synthesising", unit="token", disable=not progress)):
+        v = e.voice if e.voice is not None else voice
+        r, p = _check_params(
+            e.rate_wpm if e.rate_wpm is not None else rate_wpm,
+            e.pitch if e.pitch is not None else pitch,
+            where=f"entry {i + 1} ({e.label})",
+        )
+        text = e.text if e.text is not None else e.label
+        x, sr = synthesize(text, voice=v, rate_wpm=r, pitch=p)
+        y = x * 10.0 ** (float(e.gain_db) / 20.0)
+        limit = 32767 / 32768
+        if np.max(np.abs(y)) > limit:
+            raise CorpusError(
+                f"entry {i + 1} ({e.label}): gain_db {e.gain_db:+g} would clip (peak "
+                f"{20 * np.log10(np.max(np.abs(y))):+.2f} dBFS); lower gain_db"
+            )
+        rendered.append((e, v, r, p, text, y, sr))
+    return rendered
+
+
 def make_corpus(
     labels_or_specs: Iterable[str | Mapping[str, Any] | TTSEntry],
     out_dir: str | Path,
@@ -308,49 +378,14 @@ def make_corpus(
         would clip.
     """
     import soundfile as sf
-    from tqdm.auto import tqdm
 
     entries = [_as_entry(item, i) for i, item in enumerate(labels_or_specs)]
     if not entries:
         raise CorpusError("make_corpus: no labels given; pass at least one label")
-    problems = []
-    for i, e in enumerate(entries):
-        lab = e.label
-        if not isinstance(lab, str) or not lab.strip():
-            problems.append(f"entry {i + 1}: empty label {lab!r}")
-        elif re.search(r"[\s|#]", lab):
-            problems.append(
-                f"entry {i + 1}: label {lab!r} contains whitespace, '|' or '#', which the material "
-                "text format reserves"
-            )
-        for k in e.metadata:
-            if k in _RESERVED:
-                problems.append(f"entry {i + 1}: metadata key {k!r} clashes with a reserved column")
-    if problems:
-        raise CorpusError("make_corpus: " + "; ".join(problems))
+    _check_entries(entries)
 
     out_dir = Path(out_dir)
-    # file names: label stem, numbered when a label has several entries
-    counts: dict[str, int] = {}
-    for e in entries:
-        counts[e.label] = counts.get(e.label, 0) + 1
-    seen: dict[str, int] = {}
-    used: set[str] = set()
-    rel_files = []
-    for e in entries:
-        if e.name is not None:
-            stem = _SAFE.sub("_", str(e.name)).strip("_") or "token"
-        else:
-            stem = _SAFE.sub("_", e.label).strip("_") or "token"
-            if counts[e.label] > 1:
-                seen[e.label] = seen.get(e.label, 0) + 1
-                stem = f"{stem}_{seen[e.label]}"
-        base, k = stem, 1
-        while stem.lower() in used:
-            k += 1
-            stem = f"{base}-{k}"
-        used.add(stem.lower())
-        rel_files.append(f"{audio_dir}/{stem}.wav" if audio_dir else f"{stem}.wav")
+    rel_files = _file_names(entries, audio_dir=audio_dir)
 
     index_path = out_dir / "index.csv"
     exists = [index_path] if index_path.exists() else []
@@ -363,25 +398,7 @@ def make_corpus(
         )
 
     # synthesise everything first, so a failure leaves no half-written corpus
-    rendered = []
-    for i, e in enumerate(tqdm(entries, desc="synthesising", unit="token", disable=not progress)):
-        v = e.voice if e.voice is not None else voice
-        r, p = _check_params(
-            e.rate_wpm if e.rate_wpm is not None else rate_wpm,
-            e.pitch if e.pitch is not None else pitch,
-            where=f"entry {i + 1} ({e.label})",
-        )
-        text = e.text if e.text is not None else e.label
-        x, sr = synthesize(text, voice=v, rate_wpm=r, pitch=p)
-        g = 10.0 ** (float(e.gain_db) / 20.0)
-        y = x * g
-        limit = 32767 / 32768
-        if np.max(np.abs(y)) > limit:
-            raise CorpusError(
-                f"entry {i + 1} ({e.label}): gain_db {e.gain_db:+g} would clip (peak "
-                f"{20 * np.log10(np.max(np.abs(y))):+.2f} dBFS); lower gain_db"
-            )
-        rendered.append((e, v, r, p, text, y, sr))
+    rendered = _render(entries, voice=voice, rate_wpm=rate_wpm, pitch=pitch, progress=progress)
 
     meta_cols: list[str] = []
     for e in entries:
