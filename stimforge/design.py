@@ -737,6 +737,43 @@ def _weighted_order(keys: list, weights: list[float], rng: np.random.Generator) 
     return [keys[i] for i in np.argsort(-score, kind="stable")]
 
 
+def _deal_chunks(pools: list[list[Chunk]], chosen: list, *, slots: list[int], n_trials: int,
+                 rng: np.random.Generator) -> list[list[Chunk]]:
+    """Give every chosen label key an actual chunk (its tokens) of that key, in random order."""
+    items: list[dict[tuple[str, ...], list[Chunk]]] = []
+    for pool in pools:
+        dd: dict[tuple[str, ...], list[Chunk]] = {}
+        for ch in pool:
+            dd.setdefault(tuple(lab for lab, _ in ch), []).append(ch)
+        items.append({kk: [v[int(j)] for j in rng.permutation(len(v))] for kk, v in
+                      sorted(dd.items())})
+    n_slots = len(slots)
+    return [[items[slots[s]][chosen[t * n_slots + s]].pop() for s in range(n_slots)]
+            for t in range(n_trials)]
+
+
+def _scramble_failure(name: str, level: str, pools: list[list[Chunk]], *, n_trials: int,
+                      max_attempts: int, exhausted_proof: bool) -> DesignError:
+    """The error of a scramble no search could arrange, with the label that crowds the edges."""
+    all_chunks = [c for p in pools for c in p]
+    joins = Counter(c[0][0] for c in all_chunks) + Counter(c[-1][0] for c in all_chunks)
+    lab, n = sorted(joins.items(), key=lambda kv: (-kv[1], kv[0]))[0]
+    how = (
+        "an exhaustive search shows that no arrangement satisfies "
+        "constraints.no_adjacent_repeat"
+        if exhausted_proof
+        else f"no arrangement satisfying constraints.no_adjacent_repeat found in {max_attempts} "
+        f"attempt(s) (constraints.max_attempts)"
+    )
+    return DesignError(
+        f"condition {name!r} (scramble at {level!r}): {how}; {len(all_chunks)} {level} groups "
+        f"in {n_trials} trial(s), the most frequent label at their edges is {lab!r} ({n} of "
+        f"{2 * len(all_chunks)} edges). "
+        + ("Vary" if exhausted_proof else "Raise max_attempts, vary")
+        + " the material, or set constraints.no_adjacent_repeat: false"
+    )
+
+
 def _scramble(
     *,
     name: str,
@@ -835,40 +872,12 @@ def _scramble(
         if i == total:
             if attempt:
                 logger.info("condition %r: scramble found on attempt %d", name, attempt + 1)
-            # give every chosen key an actual chunk (token) of that key, in random order
-            items: list[dict[tuple[str, ...], list[Chunk]]] = []
-            for pool in pools:
-                dd: dict[tuple[str, ...], list[Chunk]] = {}
-                for ch in pool:
-                    dd.setdefault(tuple(lab for lab, _ in ch), []).append(ch)
-                items.append({kk: [v[int(j)] for j in rng.permutation(len(v))] for kk, v in
-                              sorted(dd.items())})
-            trials = []
-            for t in range(n_trials):
-                trials.append(
-                    [items[slots[s]][chosen[t * n_slots + s]].pop() for s in range(n_slots)]
-                )
-            return trials
+            return _deal_chunks(pools, chosen, slots=slots, n_trials=n_trials, rng=rng)
         if i < 0:
             exhausted_proof = True
             break
-    all_chunks = [c for p in pools for c in p]
-    joins = Counter(c[0][0] for c in all_chunks) + Counter(c[-1][0] for c in all_chunks)
-    lab, n = sorted(joins.items(), key=lambda kv: (-kv[1], kv[0]))[0]
-    how = (
-        "an exhaustive search shows that no arrangement satisfies "
-        "constraints.no_adjacent_repeat"
-        if exhausted_proof
-        else f"no arrangement satisfying constraints.no_adjacent_repeat found in {max_attempts} "
-        f"attempt(s) (constraints.max_attempts)"
-    )
-    raise DesignError(
-        f"condition {name!r} (scramble at {level!r}): {how}; {len(all_chunks)} {level} groups "
-        f"in {n_trials} trial(s), the most frequent label at their edges is {lab!r} ({n} of "
-        f"{2 * len(all_chunks)} edges). "
-        + ("Vary" if exhausted_proof else "Raise max_attempts, vary")
-        + " the material, or set constraints.no_adjacent_repeat: false"
-    )
+    raise _scramble_failure(name, level, pools, n_trials=n_trials, max_attempts=max_attempts,
+                            exhausted_proof=exhausted_proof)
 
 
 # =========================================================================== lists
