@@ -27,6 +27,8 @@ from ._version import __version__
 from .acoustics import peak_dbfs
 from .assemble import assemble_trial, trial_layout, unit_rows
 from .errors import BuildError
+from .events import (EVENT_COLUMNS, PLAYLIST_COLUMNS, CodeTable, assign_values, code_table,
+                     jitter_rng, marker_channel, plan_list, playlist_rows)
 from .export import LOG, MANIFEST, commit_output, json_dumps, prepare_output, sha256_file, write_tsv
 from .recipe import Recipe, load_recipe
 
@@ -35,8 +37,9 @@ __all__ = ["build", "BuildResult", "TRIAL_COLUMNS", "UNIT_COLUMNS"]
 log = logging.getLogger("stimforge")
 
 TRIAL_COLUMNS = [
-    "stim_file", "condition", "kind", "trial", "repetition", "list", "order", "duration",
-    "n_units", "lead_in_units", "analysis_onset", "analysis_duration", "lufs", "peak_dbfs",
+    "stim_file", "condition", "kind", "trial", "repetition", "list", "order", "value",
+    "duration", "n_units", "lead_in_units", "analysis_onset", "analysis_duration", "lufs",
+    "peak_dbfs",
 ]
 UNIT_COLUMNS = [
     "stim_file", "condition", "trial", "level", "index", "position", "label", "onset",
@@ -225,19 +228,9 @@ def build(
         if target is None and recipe.pitch.policy != "keep":
             target = corpus.median_f0()
         base_n = rates.slot_lengths[0]  # rendered once at the shorter slot (see fit_to_slot)
-        processed = process_tokens(
-            tokens,
-            sr=sr,
-            lengths=[base_n],
-            retime=recipe.retime,
-            pitch=recipe.pitch,
-            level=recipe.level,
-            target_f0=target,
-            jobs=jobs if jobs is not None else recipe.retime.jobs,
-            progress=progress,
-            cache_dir=recipe.retime.cache_dir,
-            onset_threshold_db=recipe.retime.onset_threshold_db,
-        )
+        processed = process_tokens(tokens, sr=sr, n_samples=base_n, retime=recipe.retime,
+                                   pitch=recipe.pitch, level=recipe.level, target_f0=target,
+                                   jobs=jobs, progress=progress)
         for w in processed.warnings:
             note(f"re-timing: {w}")
 
@@ -252,12 +245,14 @@ def build(
             stim_file = f"stimuli/{plan.stem}.wav"
             x = assemble_trial(
                 [(u.token_id, u.reversed) for u in plan.units],
-                get=lambda tid, n: processed.get(tid, base_n),
+                get=processed.get,
                 rates=rates,
             )
             if np.max(np.abs(x)) > 1.0:
                 raise BuildError(f"{stim_file}: a sample exceeds full scale; this is a bug")
             sf.write(tmp / stim_file, x, sr, subtype=recipe.output.subtype, format="WAV")
+            if recipe.events.marker_channel:
+                _write_marked(tmp, plan.stem, x, recipe, int(starts[plan.lead_in_units]))
             onset_unit = plan.lead_in_units
             file_info[(plan.condition, plan.trial)] = {
                 "stim_file": stim_file,
@@ -270,8 +265,7 @@ def build(
                 "lufs": round(_lufs(x, sr), 3),
                 "peak_dbfs": round(peak_dbfs(x), 3),
             }
-            units_rows.extend(unit_rows(plan, stim_file=stim_file, hierarchy=recipe.hierarchy,
-                                        rates=rates))
+            units_rows.extend(unit_rows(plan, stim_file=stim_file, rates=rates))
 
         trial_rows = []
         for p in design.presentations:
@@ -279,12 +273,17 @@ def build(
             trial_rows.append(
                 {"stim_file": info["stim_file"], "condition": p.condition, "kind": info["kind"],
                  "trial": p.trial, "repetition": p.repetition, "list": p.list, "order": p.order,
-                 **{k: info[k] for k in TRIAL_COLUMNS[7:]}}
+                 **{k: info[k] for k in TRIAL_COLUMNS[8:]}}
             )
+        codes = _event_codes(recipe, trial_rows)  # the `value` column and events/ files
+        trial_rows = assign_values(trial_rows, codes)
         write_tsv(tmp / "trials.tsv", trial_rows, TRIAL_COLUMNS)
+        _write_events(tmp, recipe, trial_rows, codes)
         write_tsv(tmp / "units.tsv", units_rows, UNIT_COLUMNS)
 
         summary = _summary(recipe, rates, design, trial_rows, processed, out)
+        summary += ("\ntrigger codes (the value column of trials.tsv; plans and playlists in "
+                    "events/):\n" + codes.format() + "\n")
         (tmp / "summary.txt").write_text(summary, encoding="utf-8")
 
         report = None
@@ -293,7 +292,8 @@ def build(
 
             note("acoustic check ...")
             # the checker reads only what has been written, as it would for any folder
-            _write_manifest(tmp, recipe, rates, corpus, tokens, design, processed, check=None)
+            _write_manifest(tmp, recipe, rates, corpus, tokens, design, processed, check=None,
+                            codes=codes)
             report = check_build(tmp, alpha=recipe.check.alpha,
                                  sensitivity=recipe.check.sensitivity, progress=progress)
             (tmp / "check").mkdir(exist_ok=True)
@@ -303,7 +303,7 @@ def build(
             summary += f"\nAcoustic check: {report.summary_line()}\n"
             (tmp / "summary.txt").write_text(summary, encoding="utf-8")
         manifest = _write_manifest(tmp, recipe, rates, corpus, tokens, design, processed,
-                                   check=report)
+                                   check=report, codes=codes)
         note(f"done in {time.monotonic() - t0:.1f} s")
         (tmp / LOG).write_text("\n".join(logbuf) + "\n", encoding="utf-8")
         commit_output(tmp, out, overwrite=overwrite)
@@ -322,7 +322,42 @@ def build(
     )
 
 
-def _write_manifest(tmp, recipe, rates, corpus, tokens, design, processed, *, check) -> dict:
+def _event_codes(recipe: Recipe, trial_rows: list[dict[str, Any]]) -> CodeTable:
+    return code_table(trial_rows, conditions=[c.name for c in recipe.conditions],
+                      settings=recipe.events)
+
+
+def _write_events(tmp: Path, recipe: Recipe, trial_rows: list[dict[str, Any]],
+                  codes: CodeTable) -> None:
+    """Per list: the planned ``events/list-N_events.tsv`` and ``events/list-N_playlist.csv``."""
+    folder = tmp / "events"
+    folder.mkdir(exist_ok=True)
+    marked = {}
+    if recipe.events.marker_channel:
+        marked = {r["stim_file"]: "stimuli-marker/" + r["stim_file"].split("/", 1)[1]
+                  for r in trial_rows}
+    for n in sorted({int(r["list"]) for r in trial_rows}):
+        rows = plan_list(trial_rows, list_number=n, table=codes, settings=recipe.events,
+                         rng=jitter_rng(recipe.seed, n))
+        write_tsv(folder / f"list-{n}_events.tsv", rows, EVENT_COLUMNS)
+        lines = [",".join(PLAYLIST_COLUMNS)]
+        for r in playlist_rows(rows, files=marked):
+            lines.append(f"{r['order']},{r['file']},{r['code']},{r['interval']:.3f}")
+        (folder / f"list-{n}_playlist.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
+
+
+def _write_marked(tmp: Path, stem: str, x: np.ndarray, recipe: Recipe, onset: int) -> None:
+    """A stereo copy of a trial: speech left, marker pulses (trial and analysis onset) right."""
+    ev = recipe.events
+    m = marker_channel(len(x), sr=recipe.output.sample_rate, onsets=[0, onset],
+                       pulse=ev.marker_pulse, level=ev.marker_level)
+    (tmp / "stimuli-marker").mkdir(exist_ok=True)
+    sf.write(tmp / "stimuli-marker" / f"{stem}.wav", np.column_stack([x, m]),
+             recipe.output.sample_rate, subtype=recipe.output.subtype, format="WAV")
+
+
+def _write_manifest(tmp, recipe, rates, corpus, tokens, design, processed, *, check,
+                    codes: CodeTable | None = None) -> dict:
     outputs = {
         p.relative_to(tmp).as_posix(): sha256_file(p)
         for p in sorted(tmp.rglob("*"))
@@ -334,6 +369,7 @@ def _write_manifest(tmp, recipe, rates, corpus, tokens, design, processed, *, ch
         "recipe_file": recipe.source.name if recipe.source else None,
         "seed": recipe.seed,
         "rate_table": rates.to_dict(),
+        "events": None if codes is None else codes.to_dict(),
         "versions": _versions(),
         "inputs": {t.id: t.sha256 for t in tokens},
         "outputs": outputs,

@@ -15,7 +15,8 @@ import warnings
 from ._version import __version__
 from .errors import StimforgeError
 
-COMMANDS = ["demo", "build", "check", "inspect", "tts", "rates", "schema", "init"]
+COMMANDS = ["demo", "build", "check", "inspect", "tts", "rates", "schema", "init", "epoch", "analyze",
+            "plan", "simulate"]
 
 CAUTION = (
     "Caution: digital level (dBFS) is not sound pressure. Calibrate the presentation level on the "

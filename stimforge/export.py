@@ -86,7 +86,7 @@ def prepare_output(out: Path, *, overwrite: bool) -> Path:
 
 # Paths a build writes: a file of someone else's there stops --overwrite before any work.
 _RESERVED_TOP = {MANIFEST, LOG, "trials.tsv", "units.tsv", "summary.txt"}
-_RESERVED_DIRS = {"stimuli", "check"}
+_RESERVED_DIRS = {"stimuli", "check", "events", "stimuli-marker"}
 
 
 def _replaceable(out: Path) -> set[str]:

@@ -13,6 +13,7 @@ from __future__ import annotations
 import difflib
 import json
 import math
+import unicodedata
 import warnings
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -31,7 +32,7 @@ from pydantic import (
 
 from .defaults import ALPHA, ONSET_THRESHOLD_DB, TRIM_THRESHOLD_DB
 from .errors import RecipeError
-from .grid import LevelRate, RateTable, RateWarning, rate_table
+from .grid import MAX_LEVELS, LevelRate, RateTable, RateWarning, rate_table
 from .timing import exact
 
 __all__ = [
@@ -68,15 +69,36 @@ def _resolve_path(value: Path | None, info: ValidationInfo) -> Path | None:
 RecipePath = Annotated[Path, AfterValidator(_resolve_path)]
 
 
+# Bounds no real design comes near; they keep absurd values (a 10^9 s trial, a million lists)
+# from reaching the arithmetic.  Sizes below them are estimated, and refused beyond sane limits
+# unless asked for, by stimforge.build.estimate_build.
+MAX_TRIAL_SECONDS = 36000.0  # one trial: 10 hours
+MAX_PER_CONDITION = 100000
+MAX_LISTS = 10000
+
+
 class _Model(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # no inf/nan anywhere: ".inf" for a duration would otherwise reach the arithmetic unnamed
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
+
+
+def _nfc(value: Any) -> Any:
+    """Labels in composed Unicode (NFC), so a decomposed "e + accent" matches a composed one."""
+    if isinstance(value, str):
+        return unicodedata.normalize("NFC", value)
+    if isinstance(value, list):
+        return [_nfc(v) for v in value]
+    return value
+
+
+Label = Annotated[str, AfterValidator(_nfc)]
 
 
 # --------------------------------------------------------------------------- hierarchy
 class UnitSpec(_Model):
     """The lowest element of the structure (e.g. a syllable) and its fixed slot."""
 
-    name: str = Field("syllable", min_length=1, description="Name of the unit, e.g. 'syllable'.")
+    name: Label = Field("syllable", min_length=1, description="Name of the unit, e.g. 'syllable'.")
     duration: float = Field(
         ..., gt=0, le=10, description="Slot duration in seconds; every token is fitted to it."
     )
@@ -85,7 +107,7 @@ class UnitSpec(_Model):
 class LevelSpec(_Model):
     """One grouping level above the unit."""
 
-    name: str = Field(..., min_length=1, description="Name of the level, e.g. 'word', 'line'.")
+    name: Label = Field(..., min_length=1, description="Name of the level, e.g. 'word', 'line'.")
     size: int = Field(
         ..., ge=2, le=1000, description="Number of elements of the level just below per group."
     )
@@ -94,7 +116,8 @@ class LevelSpec(_Model):
 class HierarchySpec(_Model):
     unit: UnitSpec
     levels: list[LevelSpec] = Field(
-        ..., min_length=1, description="Grouping levels from the lowest upwards, to any depth."
+        ..., min_length=1, max_length=MAX_LEVELS,
+        description=f"Grouping levels from the lowest upwards, 1 to {MAX_LEVELS}.",
     )
 
     @model_validator(mode="after")
@@ -178,10 +201,10 @@ class GenerateSpec(_Model):
         description="'words': fixed multi-unit items streamed in random order; "
         "'units': random unit draws from 'units'.",
     )
-    words: list[list[str]] | None = Field(
+    words: list[list[Label]] | None = Field(
         None, description="For mode 'words': each item is a list of unit labels."
     )
-    units: list[str] | None = Field(None, description="For mode 'units': the unit labels drawn.")
+    units: list[Label] | None = Field(None, description="For mode 'units': the unit labels drawn.")
     no_immediate_repeat: bool = Field(True, description="Never the same item twice in a row.")
 
     @model_validator(mode="after")
@@ -239,14 +262,16 @@ class TrialsSpec(_Model):
         None, ge=1, description="Top-level groups analysed per trial (whole cycles by construction)."
     )
     duration: float | None = Field(
-        None, gt=0, description="Alternative to groups_per_trial: analysed seconds per trial; "
+        None, gt=0, le=MAX_TRIAL_SECONDS, description="Alternative to groups_per_trial: analysed seconds per trial; "
         "must be a whole number of cycles of the slowest level."
     )
     lead_in: bool = Field(True, description="Prepend one extra top-level group, marked lead-in.")
     silence_before: float = Field(0.5, ge=0, le=60, description="Seconds of silence before.")
     silence_after: float = Field(0.5, ge=0, le=60, description="Seconds of silence after.")
-    per_condition: int = Field(..., ge=1, description="Trials per condition (before repeats).")
-    lists: int = Field(1, ge=1, description="Participant lists (counterbalanced, seeded order).")
+    per_condition: int = Field(..., ge=1, le=MAX_PER_CONDITION,
+                               description="Trials per condition (before repeats).")
+    lists: int = Field(1, ge=1, le=MAX_LISTS,
+                       description="Participant lists (counterbalanced, seeded order).")
     rotate_items: bool = Field(
         False,
         description="Latin square over conditions where items rotate: list l plays trial t only "
@@ -302,13 +327,22 @@ class RetimeSpec(_Model):
     def _range(cls, v: tuple[float, float]) -> tuple[float, float]:
         lo, hi = v
         if not (0 < lo <= 1 <= hi):
-            raise ValueError(f"need 0 < low <= 1 <= high, got [{lo}, {hi}]")
+            # the value itself is added by the error formatter ("(got [1.7, 0.6])")
+            raise ValueError("need 0 < low <= 1 <= high for [low, high]")
         return v
 
     @model_validator(mode="after")
     def _f0(self) -> "RetimeSpec":
         if self.f0_floor >= self.f0_ceil:
             raise ValueError(f"f0_floor ({self.f0_floor}) must be below f0_ceil ({self.f0_ceil})")
+        if self.cache and self.cache_dir is not None:
+            # one error here instead of one warning per token when the cache cannot be written
+            probe = Path(self.cache_dir)
+            while not probe.exists() and probe.parent != probe:
+                probe = probe.parent
+            if probe.exists() and not probe.is_dir():
+                raise _At(("cache_dir",), f"{self.cache_dir}: {probe} is a file, not a folder; "
+                          "point cache_dir at a folder (it is made if missing), or remove it")
         return self
 
 
@@ -348,10 +382,44 @@ class CheckSpec(_Model):
     sensitivity: bool = Field(True, description="Estimate the smallest detectable planted cues.")
 
 
+class EventsSpec(_Model):
+    """Trigger codes and the planned presentation (see stimforge/events.py)."""
+
+    codes: Literal["condition", "trial"] = Field(
+        "condition",
+        description="'condition': one code per condition and hearing, 10 x condition number + "
+        "hearing (11, 12, 21, ...) when that fits below the reserved codes, else numbered "
+        "1, 2, ...; 'trial': one code per distinct presentation, numbered 1, 2, ...",
+    )
+    table: dict[str, int | list[int]] | None = Field(
+        None, description="Explicit codes per condition: one per hearing, or one for all "
+        "hearings, e.g. {intact: [11, 12], reversed: 40}; overrides 'codes'.",
+    )
+    list_start: int | None = Field(250, ge=1, le=255, description="Code sent when a list starts "
+                                   "(null: none).")
+    list_end: int | None = Field(251, ge=1, le=255, description="Code sent after a list's last "
+                                 "trial (null: none).")
+    catch: int | None = Field(252, ge=1, le=255, description="Code of catch trials (null: none).")
+    catch_conditions: list[str] = Field(
+        [], description="Conditions whose presentations are catch trials (carry the catch code).")
+    iti: float = Field(2.0, ge=0, le=600, description="Seconds of silence between the end of "
+                       "one trial file and the start of the next.")
+    jitter: float = Field(0.0, ge=0, le=60, description="Width in seconds of a uniform random "
+                          "addition to every pause (seeded by the recipe's seed and the list).")
+    marker_channel: bool = Field(
+        False, description="Also write stereo copies of the trials (stimuli-marker/) whose "
+        "second channel has a pulse at the trial onset and at the analysis onset, for "
+        "audio-to-trigger converters.",
+    )
+    marker_pulse: float = Field(0.005, gt=0, le=0.1, description="Length of a marker pulse, s.")
+    marker_level: float = Field(0.5, gt=0, le=1, description="Marker pulse amplitude (full "
+                                "scale 1).")
+
+
 class Recipe(_Model):
     """A whole experiment.  Build one with :func:`load_recipe` or :func:`recipe_from_dict`."""
 
-    name: str = Field(..., min_length=1, pattern=r"^[A-Za-z0-9_.\-]+$")
+    name: str = Field(..., min_length=1, max_length=120, pattern=r"^[A-Za-z0-9_.\-]+$")
     description: str = ""
     seed: int = Field(..., ge=0, lt=2**63)
     hierarchy: HierarchySpec
@@ -366,9 +434,21 @@ class Recipe(_Model):
     level: LevelSpecPolicy = LevelSpecPolicy()
     output: OutputSpec = OutputSpec()
     check: CheckSpec = CheckSpec()
+    events: EventsSpec = EventsSpec()
 
     # Set by load_recipe; excluded from the schema and from dumps.
     source: Path | None = Field(None, exclude=True, json_schema_extra={"hidden": True})
+
+    @field_validator("name")
+    @classmethod
+    def _folder_name(cls, v: str) -> str:
+        # the name is the default build folder's name (build/<name>): "." or ".." would be the
+        # recipe's own folder or its parent, a leading dot a hidden folder
+        if v.startswith("."):
+            raise ValueError("a name starting with a dot cannot name the build folder ('.' and "
+                             "'..' would be the recipe's own folder or its parent); start it "
+                             "with a letter or digit, e.g. 'my-experiment'")
+        return v
 
     @model_validator(mode="after")
     def _cross(self) -> "Recipe":
@@ -383,7 +463,8 @@ class Recipe(_Model):
                     raise _At(("conditions", i), f"condition {c.name!r}: kind 'scramble' needs "
                               f"'level', one of {levels[:-1]}")
                 if c.level not in levels[:-1]:
-                    hint = _did_you_mean(c.level, levels)
+                    # never suggest the top level, which is what is refused here
+                    hint = "" if c.level == levels[-1] else _did_you_mean(c.level, levels[:-1])
                     raise _At(("conditions", i, "level"), f"condition {c.name!r}: level "
                               f"{c.level!r} must be one of {levels[:-1]} (the top level cannot be "
                               f"scrambled){hint}")
@@ -401,9 +482,47 @@ class Recipe(_Model):
                 raise _At(("material", "generate", "words"),
                           f"the words have {wl} units each but level "
                           f"{self.hierarchy.levels[0].name!r} has size {self.hierarchy.levels[0].size}")
+        self._check_events(names)
         # Integer-cycle rule, checked here so every entry point sees it.
-        self.rates()
+        rt = self.rates()
+        self._check_sizes(rt)
         return self
+
+    def _check_sizes(self, rt: "RateTable") -> None:
+        """A trial of sane length; a fade that fits the slot (it would otherwise be shortened)."""
+        seconds = rt.trial_samples / rt.sr
+        if seconds > MAX_TRIAL_SECONDS:
+            raise _At(("trials",), f"one trial would last {seconds:.4g} s ({rt.units_per_trial} "
+                      f"{self.hierarchy.unit.name}s of {self.hierarchy.unit.duration:g} s plus "
+                      f"silences); at most {MAX_TRIAL_SECONDS:g} s are allowed: use fewer "
+                      "groups_per_trial, a shorter duration, or fewer or smaller levels")
+        slot = rt.slot_lengths[0]
+        fade_n = max(2, round(self.level.fade * rt.sr))
+        if fade_n > max(2, slot // 2):
+            raise _At(("level", "fade"), f"a {self.level.fade:g} s fade in and out does not fit "
+                      f"the {self.hierarchy.unit.duration:g} s slot ({slot} samples at "
+                      f"{rt.sr} Hz): at most {slot // 2 / rt.sr:.4g} s (half the slot)")
+
+    def _check_events(self, names: list[str]) -> None:
+        """The event codes fit an 8-bit port for this design (stimforge.events.code_table)."""
+        from .events import code_table
+
+        ev = self.events
+        for field_, given in (("table", list(ev.table or {})), ("catch_conditions",
+                                                                 ev.catch_conditions)):
+            for n in given:
+                if n not in names:
+                    raise _At(("events", field_), f"{n!r} is not a condition"
+                              f"{_did_you_mean(n, names)}")
+        times = 1 + (self.repeat.times if self.repeat is not None else 0)
+        repeated = set(self.repeat.conditions) if self.repeat is not None else set()
+        rows = [{"condition": c, "trial": t, "repetition": h}
+                for c in names for t in range(1, self.trials.per_condition + 1)
+                for h in range(1, (times if c in repeated else 1) + 1)]
+        try:
+            code_table(rows, conditions=names, settings=ev)
+        except RecipeError as exc:
+            raise _At(("events",), str(exc)) from None
 
     # ------------------------------------------------------------------ derived
     @property
@@ -453,19 +572,101 @@ def _did_you_mean(word: str, options: list[str]) -> str:
     return f"; did you mean {close[0]!r}?" if close else ""
 
 
-def _line_map(text: str) -> dict[tuple, int]:
+# Limits of the YAML reader.  A recipe is a few kB with a dozen levels of nesting; these bounds
+# are far above that and far below what would exhaust memory or the interpreter's stack.
+MAX_RECIPE_BYTES = 2_000_000
+MAX_YAML_DEPTH = 64  # nested mappings / lists
+MAX_YAML_NODES = 200_000  # values after every alias is expanded (an "alias bomb" has billions)
+MAX_INT_DIGITS = 40  # seeds stay below 2**63 (19 digits)
+
+
+class _Refused(yaml.MarkedYAMLError):
+    """A YAML document the recipe reader will not read (with the line it is about)."""
+
+    def __init__(self, mark: Any, problem: str) -> None:
+        super().__init__(problem=problem, problem_mark=mark)
+
+
+class _RecipeLoader(yaml.SafeLoader):
+    """PyYAML's safe loader with the recipe reader's limits.
+
+    Refuses duplicate keys in a mapping (YAML would keep the last one silently), aliases that
+    refer to themselves, documents that expand to more than :data:`MAX_YAML_NODES` values,
+    nesting deeper than :data:`MAX_YAML_DEPTH` and integers longer than
+    :data:`MAX_INT_DIGITS` digits.  Every refusal names its line.
+    """
+
+    def __init__(self, stream: str) -> None:
+        super().__init__(stream)
+        self._depth = 0
+
+    def compose_node(self, parent: Any, index: Any) -> Any:
+        if self.check_event(yaml.AliasEvent):
+            event = self.peek_event()
+            target = self.anchors.get(event.anchor)
+            if target is not None and getattr(target, "_sf_size", None) is None:
+                raise _Refused(event.start_mark, f"the alias *{event.anchor} refers to a value "
+                               "that contains it (a recursive alias); write the value out")
+            return super().compose_node(parent, index)
+        self._depth += 1
+        try:
+            if self._depth > MAX_YAML_DEPTH:
+                raise _Refused(self.peek_event().start_mark, f"values nested more than "
+                               f"{MAX_YAML_DEPTH} levels deep; a recipe needs far fewer")
+            node = super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+        size = 1
+        if isinstance(node, yaml.SequenceNode):
+            size += sum(c._sf_size for c in node.value)
+        elif isinstance(node, yaml.MappingNode):
+            size += sum(k._sf_size + v._sf_size for k, v in node.value)
+        if size > MAX_YAML_NODES:
+            raise _Refused(node.start_mark, f"this value expands to {size} or more values "
+                           f"through aliases (*name); at most {MAX_YAML_NODES} are read (an "
+                           "alias bomb?); write the values out")
+        node._sf_size = size
+        return node
+
+    def construct_mapping(self, node: Any, deep: bool = False) -> Any:
+        if isinstance(node, yaml.MappingNode):
+            seen: dict[Any, int] = {}
+            for key_node, _ in node.value:
+                if key_node.tag == "tag:yaml.org,2002:merge":
+                    continue
+                key = self.construct_object(key_node, deep=True)
+                try:
+                    first = seen.get(key)
+                except TypeError:  # an unhashable key: the base class says so
+                    break
+                line = key_node.start_mark.line + 1
+                if first is not None:
+                    raise _Refused(key_node.start_mark, f"key {key!r} appears twice in the "
+                                   f"same mapping (lines {first} and {line}); YAML would keep "
+                                   "only the last one: merge the two or delete one")
+                seen[key] = line
+        return super().construct_mapping(node, deep=deep)
+
+    def construct_yaml_int(self, node: Any) -> int:
+        text = str(node.value).replace("_", "").lstrip("+-")
+        if len(text) > MAX_INT_DIGITS:
+            raise _Refused(node.start_mark, f"an integer of {len(text)} digits; numbers in a "
+                           f"recipe have at most {MAX_INT_DIGITS} (seeds are below 2**63)")
+        return super().construct_yaml_int(node)
+
+
+_RecipeLoader.add_constructor("tag:yaml.org,2002:int", _RecipeLoader.construct_yaml_int)
+
+
+def _node_lines(root: Any) -> dict[tuple, int]:
     """Map YAML paths (tuples of keys / indices) to 1-based line numbers."""
     out: dict[tuple, int] = {}
-    try:
-        root = yaml.compose(text, Loader=yaml.SafeLoader)
-    except yaml.YAMLError:
-        return out
 
     def walk(node: Any, path: tuple) -> None:
         out[path] = node.start_mark.line + 1
         if isinstance(node, yaml.MappingNode):
             for k, v in node.value:
-                key = k.value
+                key = k.value if isinstance(k, yaml.ScalarNode) else repr(k.value)
                 out[path + (key, "__key__")] = k.start_mark.line + 1
                 walk(v, path + (key,))
         elif isinstance(node, yaml.SequenceNode):
@@ -475,6 +676,31 @@ def _line_map(text: str) -> dict[tuple, int]:
     if root is not None:
         walk(root, ())
     return out
+
+
+def _read_yaml(text: str) -> tuple[Any, dict[tuple, int]]:
+    """Parse one YAML document with the recipe reader's limits: (data, line map).
+
+    Raises
+    ------
+    yaml.YAMLError
+        Syntax errors and the refusals of :class:`_RecipeLoader` (``problem_mark`` set).
+    """
+    loader = _RecipeLoader(text)
+    try:
+        node = loader.get_single_node()
+        data = None if node is None else loader.construct_document(node)
+    finally:
+        loader.dispose()
+    return data, _node_lines(node)
+
+
+def _line_map(text: str) -> dict[tuple, int]:
+    """Map YAML paths (tuples of keys / indices) to 1-based line numbers ({} if unreadable)."""
+    try:
+        return _read_yaml(text)[1]
+    except (yaml.YAMLError, RecursionError, MemoryError):
+        return {}
 
 
 def _model_at(loc: tuple) -> type[BaseModel] | None:
@@ -537,7 +763,8 @@ def _format_errors(exc: ValidationError, *, source: str, lines: dict[tuple, int]
             if msg.startswith("Value error, "):
                 msg = msg[len("Value error, ") :]
             if "input" in err and etype != "model_type" and not isinstance(err["input"], dict):
-                msg += f" (got {err['input']!r})"
+                got = repr(err["input"])
+                msg += f" (got {got if len(got) <= 80 else got[:76] + ' ...'})"
             if etype == "string_type" and isinstance(err.get("input"), bool):
                 msg += (": YAML reads a bare yes/no/on/off/true/false as a boolean; quote the "
                         "label, e.g. 'no'")
@@ -579,23 +806,31 @@ def load_recipe(path: str | Path) -> Recipe:
     """
     path = Path(path)
     try:
+        if path.is_dir():
+            raise RecipeError(f"{path}: is a folder; give the recipe's YAML file")
+        size = path.stat().st_size
+        if size > MAX_RECIPE_BYTES:
+            raise RecipeError(f"{path}: {size} bytes; a recipe is a few kB (at most "
+                              f"{MAX_RECIPE_BYTES} bytes are read): is this the right file?")
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise RecipeError(f"{path}: recipe file not found") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise RecipeError(f"{path}: cannot read recipe: {exc}") from None
     try:
-        data = yaml.safe_load(text)
+        data, lines = _read_yaml(text)
+    except _Refused as exc:
+        raise RecipeError(f"{path}:{exc.problem_mark.line + 1}: {exc.problem}") from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f"{path}:{mark.line + 1}" if mark is not None else str(path)
         problem = getattr(exc, "problem", None) or str(exc)
         raise RecipeError(f"{where}: not valid YAML: {problem}") from None
+    except (RecursionError, MemoryError):  # not expected within the limits above
+        raise RecipeError(f"{path}: too large or too deeply nested to read as a recipe") from None
     if data is None:
         raise RecipeError(f"{path}: the recipe file is empty")
-    recipe = recipe_from_dict(
-        data, base_dir=path.resolve().parent, source=str(path), lines=_line_map(text)
-    )
+    recipe = recipe_from_dict(data, base_dir=path.resolve().parent, source=str(path), lines=lines)
     return recipe.model_copy(update={"source": path.resolve()})
 
 

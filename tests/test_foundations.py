@@ -22,8 +22,8 @@ PKG = ROOT / "stimforge"
 STAGES = [
     "_version", "defaults", "errors", "timing",
     "grid", "stats", "audio_io", "acoustics", "envelopes", "verify_stats", "events",
-    "recipe", "cache", "tts", "corpus", "prosody", "retime", "design", "assemble",
-    "export", "verify_report", "verify", "build",
+    "recipe", "cache", "tts", "corpus", "prosody", "retime", "design", "assemble", "preflight",
+    "export", "verify_contrast", "verify_fit", "verify_report", "verify", "build", "build_report",
     "epochs", "simulate", "response", "response_report", "planner",
     "cli", "__init__", "__main__",
 ]
