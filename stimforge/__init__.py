@@ -10,6 +10,7 @@ up front.
 from __future__ import annotations
 
 import importlib
+from types import ModuleType
 from typing import Any
 
 from ._version import __version__
@@ -39,10 +40,18 @@ _LAZY = {
     "load_recipe": ("recipe", "load_recipe"),
     "recipe_from_dict": ("recipe", "recipe_from_dict"),
     "Recipe": ("recipe", "Recipe"),
-    "read_build": ("audio_io", "read_build"),
+    # the same result object as build(); audio_io.read_build keeps the plain tables
+    "read_build": ("build", "open_build"),
+    "open_build": ("build", "open_build"),
+    "preflight": ("preflight", "preflight"),
     "RateTable": ("grid", "RateTable"),
     "rate_table": ("grid", "rate_table"),
     "grid_from_numbers": ("grid", "grid_from_numbers"),
+    "epoch_recording": ("epochs", "epoch_recording"),
+    "analyze": ("response", "analyze"),
+    "load_epochs": ("response", "load_epochs"),
+    "ResponseAnalysis": ("response", "ResponseAnalysis"),
+    "plan_power": ("planner", "plan_power"),
 }
 
 __all__ = [
@@ -68,6 +77,11 @@ def __getattr__(name: str) -> Any:
         mod, attr = _LAZY[name]
         value = getattr(importlib.import_module(f".{mod}", __name__), attr)
         globals()[name] = value
+        # importing a submodule binds it on the package under its own name (stimforge.build
+        # the module over stimforge.build the function): the public function wins
+        for n, (m, a) in _LAZY.items():
+            if n == m and isinstance(globals().get(n), ModuleType):
+                globals()[n] = getattr(globals()[n], a)
         return value
     raise AttributeError(f"module 'stimforge' has no attribute {name!r}")
 

@@ -22,9 +22,9 @@ PKG = ROOT / "stimforge"
 STAGES = [
     "_version", "defaults", "errors", "timing",
     "grid", "stats", "audio_io", "acoustics", "envelopes", "verify_stats", "events",
-    "recipe", "cache", "tts", "corpus", "prosody", "retime", "design", "assemble", "preflight",
-    "export", "verify_contrast", "verify_fit", "verify_report", "verify", "build", "build_report",
-    "epochs", "simulate", "response", "response_report", "planner",
+    "recipe", "cache", "tts", "corpus", "prosody", "retime", "design", "assemble",
+    "export", "verify_contrast", "verify_fit", "verify_report", "verify", "build_report", "build",
+    "preflight", "epochs", "simulate", "response", "response_report", "planner",
     "cli", "__init__", "__main__",
 ]
 
@@ -68,7 +68,8 @@ def test_statistics_load_without_pydantic_or_the_audio_stack():
 def test_top_level_is_lazy_but_complete():
     loaded = _modules_after("import stimforge")
     assert "stimforge.recipe" not in loaded and "pydantic" not in loaded and "scipy" not in loaded
-    for name in ("build", "check", "load_recipe", "read_build", "RateTable", "BuildResult"):
+    for name in ("build", "check", "load_recipe", "read_build", "RateTable", "BuildResult",
+                 "epoch_recording", "analyze", "load_epochs", "plan_power"):
         assert callable(getattr(stimforge, name)), name
     assert stimforge.check is stimforge.verify.check
     with pytest.raises(AttributeError, match="no attribute 'nonesuch'"):
@@ -92,6 +93,12 @@ def test_shared_defaults_have_one_source():
     assert args.alpha == defaults.ALPHA
     assert RetimeSpec().onset_threshold_db == defaults.ONSET_THRESHOLD_DB
     assert TrimSpec().threshold_db == defaults.TRIM_THRESHOLD_DB
+    ref = CheckSpec().reference
+    assert verify.REFERENCE_CUES == {"level_step": ref.level_step_db, "gap": ref.gap_ms,
+                                     "pitch_step": ref.pitch_step_st}
+    assert verify.REFERENCE_CUES == {"level_step": defaults.REFERENCE_LEVEL_STEP_DB,
+                                     "gap": defaults.REFERENCE_GAP_MS,
+                                     "pitch_step": defaults.REFERENCE_PITCH_STEP_ST}
 
 
 def test_rate_table_round_trips_through_the_manifest_layout():

@@ -276,3 +276,69 @@ def test_clean_sets_pass_at_about_alpha(rng):
     rate = hits / n_sim
     # binomial SE at 0.05 over 300 sets is 0.0126: allow 0.01 .. 0.08
     assert 0.01 <= rate <= 0.08, rate
+
+
+# ---------------------------------------------------------------------------------------------
+# Circular differences and sign-flip tests (appended for the response analysis, issue 11)
+# ---------------------------------------------------------------------------------------------
+def test_wrap_angle_into_half_open_interval():
+    # (-pi, pi]: pi stays pi, -pi becomes pi, 3 pi/2 becomes -pi/2 [calc]
+    got = vs.wrap_angle(np.array([np.pi, -np.pi, 1.5 * np.pi, 0.25]))
+    assert np.allclose(got, [np.pi, np.pi, -0.5 * np.pi, 0.25])
+
+
+def test_sign_flip_test_exact_values(rng):
+    # x = 1, 2, 3: the 8 sign patterns give sums 6, 4, 2, 0, 0, -2, -4, -6; |sum| >= 6 in 2 of
+    # 8 -> p = 0.25 two-sided; sum >= 6 in 1 of 8 -> 0.125 one-sided [calc]
+    two = vs.sign_flip_test(np.array([1.0, 2.0, 3.0]), rng=rng)
+    one = vs.sign_flip_test(np.array([1.0, 2.0, 3.0]), rng=rng, alternative="greater")
+    assert two.exact and two.p == pytest.approx(0.25) and two.mean == pytest.approx(2.0)
+    assert one.p == pytest.approx(0.125)
+    assert vs.sign_flip_test(np.array([-1.0, -2.0, -3.0]), rng=rng,
+                             alternative="less").p == pytest.approx(0.125)
+    with pytest.raises(vs.StatsError, match="alternative"):
+        vs.sign_flip_test(np.ones(3), rng=rng, alternative="bigger")
+
+
+def test_sign_flip_test_is_calibrated_over_trailing_axes(rng):
+    x = rng.standard_normal((12, 2000))  # 2000 null tests in one call, 4096 exact patterns
+    res = vs.sign_flip_test(x, rng=rng, n_perm=5000)
+    assert res.exact and res.p.shape == (2000,)
+    rate = float(np.mean(res.p <= 0.05))
+    assert 0.035 <= rate <= 0.065, rate  # binomial SE 0.0049 over 2000 tests; +-3 SE
+
+
+def test_circular_difference_paired_exact_example(rng):
+    # three items, first hearing at 0, second at 30 deg: difference 30 deg; swapping the
+    # hearings of k items gives |difference| 30 deg only for k = 0 or 3 -> p = 2/8 [calc]
+    u1 = np.ones(3, complex)
+    u2 = np.exp(1j * np.deg2rad(30.0)) * np.ones(3)
+    res = vs.circular_difference(u1, u2, paired=True, rng=rng)
+    assert np.rad2deg(res.difference) == pytest.approx(30.0)
+    assert res.exact and res.n_perm == 8 and res.p == pytest.approx(0.25)
+    assert res.ci_low <= res.difference <= res.ci_high
+
+
+def test_circular_difference_recovers_a_shift_and_is_calibrated_unpaired(rng):
+    # paired: 20 items with von-Mises-like scatter, second hearing +50 deg
+    a = rng.normal(0.0, 0.4, size=20)
+    b = a + np.deg2rad(50.0) + rng.normal(0.0, 0.2, size=20)
+    res = vs.circular_difference(a, b, paired=True, rng=rng)
+    assert np.rad2deg(res.difference) == pytest.approx(50.0, abs=10.0)
+    assert res.ci_low <= np.deg2rad(50.0) <= res.ci_high and res.p < 0.01
+    # unpaired null: 500 tests over trailing axes, rejection rate at 0.05 about 0.05
+    x = rng.uniform(-np.pi, np.pi, size=(15, 500))
+    y = rng.uniform(-np.pi, np.pi, size=(12, 500))
+    null = vs.circular_difference(x, y, paired=False, rng=rng, n_perm=400, n_boot=50)
+    rate = float(np.mean(null.p <= 0.05))
+    assert 0.02 <= rate <= 0.085, rate  # binomial SE 0.0097 over 500 tests; +-3 SE
+
+
+def test_circular_one_sample_exact_example(rng):
+    # differences 10, 20, 30 deg: mean 20 deg; only all-plus or all-minus reach |mean| 20
+    # deg -> p = 2/8 [calc]
+    res = vs.circular_one_sample(np.deg2rad([10.0, 20.0, 30.0]), rng=rng)
+    assert np.rad2deg(res.difference) == pytest.approx(20.0)
+    assert res.exact and res.p == pytest.approx(0.25)
+    with pytest.raises(vs.StatsError, match="at least 2"):
+        vs.circular_one_sample(np.array([0.1]), rng=rng)
