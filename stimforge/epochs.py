@@ -258,7 +258,7 @@ def _mne():
     try:
         import mne
     except ImportError as exc:  # pragma: no cover - the extra is installed by the tests
-        raise EpochError("reading recordings needs MNE-Python: pip install 'stimforge[recording]'"
+        raise EpochError("reading recordings needs MNE-Python: pip install 'stimforge[analysis]'"
                          ) from exc
     return mne
 
