@@ -7,3 +7,10 @@ ALPHA = 0.01
 ONSET_THRESHOLD_DB = -40.0
 #: Leading/trailing silence below this many dB re a token's own peak is trimmed from tokens.
 TRIM_THRESHOLD_DB = -40.0
+#: Reference cue sizes of the acoustic check: it vouches for a set only if it would have
+#: revealed a level step of this many dB on the first unit of every group, a silent gap of this
+#: many ms closing every group and a pitch step of this many semitones on its last unit, at
+#: every level (recipe ``check.reference``, ``stimforge check --ref-*``).
+REFERENCE_LEVEL_STEP_DB = 1.0
+REFERENCE_GAP_MS = 20.0
+REFERENCE_PITCH_STEP_ST = 1.0

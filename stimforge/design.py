@@ -25,6 +25,7 @@ import hashlib
 import logging
 import math
 import re
+import unicodedata
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -393,12 +394,18 @@ def _parse(text: str, *, hierarchy: HierarchySpec, source: str) -> _Material:
             # a complete last group may omit its final marker; close() names any miscount
             close(depth, last_line, "end of file")
         else:
-            lowest = next((i for i in range(depth) if counts[i]), depth - 1)
+            # a group that already holds more than its size lacks its closing marker
+            over = next((i for i in range(depth) if counts[i] > sizes[i]), None)
+            hint = "complete the group or delete it"
+            if over is not None:
+                hint = (f"its open {names[over + 1]} already holds {counts[over]} "
+                        f"{_plural(names[over], counts[over])} but a {names[over + 1]} has "
+                        f"{sizes[over]}: a {'|' * (over + 1)!r} marker missing?")
             raise DesignError(
                 f"{source}:{last_line}: trailing incomplete group at end of file: "
                 f"{path(depth - 1)} "
-                f"(from line {start[depth - 1]}) holds {len(cur)} of {top_units} {names[0]}s; "
-                f"its open {names[lowest + 1]} holds {counts[lowest]} of {sizes[lowest]}"
+                f"(from line {start[depth - 1]}) holds {len(cur)} of the {top_units} "
+                f"{_plural(names[0], top_units)} a {names[depth]} needs; {hint}"
             )
     return _Material(groups=groups, where=where)
 
@@ -583,6 +590,54 @@ def williams_rows(n: int) -> list[list[int]]:
     if n % 2 and n > 1:
         rows += [row[::-1] for row in rows]
     return rows
+
+
+def _nfc_labels(
+    mat: _Material, pool: Mapping[str, Sequence[str]]
+) -> tuple[_Material, dict[str, list[str]]]:
+    """Material and corpus labels in composed Unicode (NFC), so that a label typed with a
+    decomposed accent ("e" + U+0301) matches the same label typed composed ("\u00e9")."""
+    nfc = unicodedata.normalize
+    groups = [tuple(nfc("NFC", lab) for lab in g) for g in mat.groups]
+    merged: dict[str, list[str]] = {}
+    for lab, toks in pool.items():
+        merged.setdefault(nfc("NFC", lab), []).extend(toks)
+    changed = sorted({lab for g in mat.groups for lab in g if nfc("NFC", lab) != lab}
+                     | {lab for lab in pool if nfc("NFC", lab) != lab})
+    if changed:
+        logger.info("labels are compared in composed Unicode (NFC); %d label(s) written "
+                    "decomposed were composed: %s", len(changed),
+                    ", ".join(repr(nfc("NFC", lab)) for lab in changed[:5]))
+    if groups == mat.groups and len(merged) == len(pool):
+        return mat, {lab: list(toks) for lab, toks in pool.items()}
+    return _Material(groups=groups, where=mat.where, generated=mat.generated), merged
+
+
+def _rotation_notes(recipe: Recipe) -> list[str]:
+    """With ``trials.rotate_items``: warn about unequal lists and an incomplete rotation."""
+    tr = recipe.trials
+    n_cond = len(recipe.conditions)
+    if not tr.rotate_items or n_cond < 2:
+        return []
+    notes = []
+    if tr.per_condition % n_cond:
+        q, r = divmod(tr.per_condition, n_cond)
+        sizes = [q + 1] * r + [q] * (n_cond - r)
+        lo = max(n_cond, q * n_cond)
+        notes.append(
+            f"trials.rotate_items: per_condition {tr.per_condition} is not a multiple of the "
+            f"{n_cond} conditions, so every list plays {'/'.join(map(str, sizes))} trials of "
+            f"its conditions (unbalanced); set per_condition to a multiple of {n_cond} (e.g. "
+            f"{lo} or {lo + n_cond}) for equal blocks")
+    if tr.lists % n_cond:
+        notes.append(
+            f"trials.rotate_items: {tr.lists} list(s) over {n_cond} conditions: across the "
+            f"lists, each trial is heard in some conditions more often than in others"
+            + (f" (in only {tr.lists} of the {n_cond})" if tr.lists < n_cond else "")
+            + f"; use a multiple of {n_cond} lists for a full rotation")
+    for msg in notes:
+        logger.warning(msg)
+    return notes
 
 
 def _check_labels(mat: _Material, pool: Mapping[str, Sequence[str]]) -> None:
@@ -1151,13 +1206,14 @@ def make_design(
     per_trial = gpt + lead
     n_trials = recipe.trials.per_condition
     n_needed = n_trials * per_trial
-    notes: list[str] = []
+    notes: list[str] = _rotation_notes(recipe)
 
     # ---- material
     if material is not None:
         mat = _given_material(material, recipe)
     else:
         mat = _load_material(recipe, n_needed, _child(entropy, _STAGE_MATERIAL))
+    mat, pool = _nfc_labels(mat, pool)
     _check_labels(mat, pool)
 
     # ---- base sequence of groups (shared by every condition)

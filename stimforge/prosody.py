@@ -39,7 +39,8 @@ __all__ = [
 
 logger = logging.getLogger("stimforge")
 
-PITCH_POLICIES = ("flat", "level", "keep")
+PITCH_POLICIES = ("flat", "contour", "keep")
+_OLD_POLICY = {"level": "contour"}  # old spelling, read for one release
 #: Seconds of silence put around a clip before Praat reads its F0: Praat's frames cannot reach
 #: the first and last ~20 ms of a bare clip, which biases the reading of a contour.
 F0_CONTEXT_S = 0.1
@@ -121,14 +122,14 @@ def apply_pitch_policy(
     ----------
     f0 : ndarray, Hz
         0 (or less) marks unvoiced frames.
-    policy : {"flat", "level", "keep"}
-        ``flat``: every voiced frame at ``target_hz``.  ``level``: the track times
-        ``target_hz / geometric_mean(voiced reference)``, so the contour shape is kept and its
-        geometric mean lands on the target.  ``keep``: unchanged.
+    policy : {"flat", "contour", "keep"}
+        ``flat``: every voiced frame at ``target_hz``.  ``contour`` (old spelling ``level``):
+        the track times ``target_hz / geometric_mean(voiced reference)``, so the contour shape
+        is kept and its geometric mean lands on the target.  ``keep``: unchanged.
     target_hz : float or None, Hz
-        Needed by ``flat`` and ``level``.
+        Needed by ``flat`` and ``contour``.
     reference : ndarray or None, Hz
-        Voiced values whose geometric mean defines the token's height for ``level`` (default:
+        Voiced values whose geometric mean defines the token's height for ``contour`` (default:
         the voiced values of ``f0``).  Pass the token's own analysis frames so that the
         height does not depend on how the track was resampled.
 
@@ -137,6 +138,7 @@ def apply_pitch_policy(
     f0 : ndarray, Hz
     warnings : list of str
     """
+    policy = _OLD_POLICY.get(policy, policy)
     if policy not in PITCH_POLICIES:
         raise RetimeError(f"pitch.policy: unknown policy {policy!r}; use one of {PITCH_POLICIES}")
     out = np.array(f0, dtype=np.float64, copy=True)

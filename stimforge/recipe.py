@@ -2,7 +2,7 @@
 
 A recipe describes one frequency-tagging experiment: the unit (e.g. a syllable) with its slot
 duration, the levels that group units (word, line, stanza...), the token corpus, the material,
-the conditions, the trial layout, the re-timing / pitch / level policies, the output format,
+the conditions, the trial layout, the re-timing / pitch / loudness policies, the output format,
 the acoustic-check settings and a seed.  Everything downstream reads a :class:`Recipe`.
 
 Relative paths in a recipe resolve against the folder of the recipe file.
@@ -30,7 +30,8 @@ from pydantic import (
     model_validator,
 )
 
-from .defaults import ALPHA, ONSET_THRESHOLD_DB, TRIM_THRESHOLD_DB
+from .defaults import (ALPHA, ONSET_THRESHOLD_DB, REFERENCE_GAP_MS,
+                       REFERENCE_LEVEL_STEP_DB, REFERENCE_PITCH_STEP_ST, TRIM_THRESHOLD_DB)
 from .errors import RecipeError
 from .grid import MAX_LEVELS, LevelRate, RateTable, RateWarning, rate_table
 from .timing import exact
@@ -45,6 +46,8 @@ __all__ = [
     "recipe_json_schema",
     "TEMPLATE",
     "RateWarning",
+    "RecipeKeyWarning",
+    "LoudnessSpec",
 ]
 
 
@@ -346,18 +349,38 @@ class RetimeSpec(_Model):
         return self
 
 
+class RecipeKeyWarning(FutureWarning):
+    """A recipe uses an old spelling that is still read for one release (rename it)."""
+
+
+def _renamed(old: str, new: str, what: str) -> None:
+    warnings.warn(f"recipe: {old} is now {new} ({what}); the old spelling is read for one more "
+                  f"release: rename it in the recipe", RecipeKeyWarning, stacklevel=2)
+
+
 class PitchSpec(_Model):
-    policy: Literal["flat", "level", "keep"] = Field(
+    policy: Literal["flat", "contour", "keep"] = Field(
         "flat",
-        description="'flat': every voiced frame at target_hz; 'level': keep each token's contour, "
-        "move its geometric-mean F0 to target_hz (tone languages); 'keep': untouched.",
+        description="'flat': every voiced frame at target_hz; 'contour': keep each token's "
+        "contour, move its geometric-mean F0 to target_hz (tone languages); 'keep': untouched. "
+        "('level' is the old spelling of 'contour'.)",
     )
     target_hz: float | None = Field(
         None, gt=40, lt=1000, description="Default: median F0 over the corpus."
     )
 
+    @field_validator("policy", mode="before")
+    @classmethod
+    def _old_policy(cls, v: Any) -> Any:
+        if v == "level":
+            _renamed("pitch.policy 'level'", "'contour'", "keep the contour, move its height")
+            return "contour"
+        return v
 
-class LevelSpecPolicy(_Model):
+
+class LoudnessSpec(_Model):
+    """The ``loudness`` section: each token's RMS level, the set-wide peak guard, fades."""
+
     target_dbfs: float = Field(
         -26.0, le=-3, ge=-80, description="RMS over each token's active part, dB re full scale."
     )
@@ -368,6 +391,10 @@ class LevelSpecPolicy(_Model):
     fade: float = Field(0.01, ge=0.001, le=0.1, description="Raised-cosine fade in/out, seconds.")
 
 
+#: Old name of :class:`LoudnessSpec` (the section was called ``level``), kept for one release.
+LevelSpecPolicy = LoudnessSpec
+
+
 class OutputSpec(_Model):
     sample_rate: int = Field(44100, ge=8000, le=192000)
     subtype: Literal["PCM_16", "PCM_24", "PCM_32"] = Field(
@@ -376,10 +403,26 @@ class OutputSpec(_Model):
     )
 
 
+class ReferenceCueSpec(_Model):
+    """Cue sizes the acoustic check must be able to reveal, at every level, before it vouches
+    for a set; otherwise its verdict is INCONCLUSIVE (exit 3) and names what it cannot vouch for."""
+
+    level_step_db: float = Field(REFERENCE_LEVEL_STEP_DB, gt=0, le=20,
+                                 description="Loudness step on the first unit of every group, dB.")
+    gap_ms: float = Field(REFERENCE_GAP_MS, gt=0, le=1000,
+                          description="Silent gap closing every group (its last unit's end), ms.")
+    pitch_step_st: float = Field(REFERENCE_PITCH_STEP_ST, gt=0, le=12,
+                                 description="Pitch step on the last unit of every group, "
+                                 "semitones.")
+
+
 class CheckSpec(_Model):
     run: bool = Field(True, description="Run the acoustic check at the end of the build.")
     alpha: float = Field(ALPHA, gt=0, lt=0.5, description="Family-wise error rate.")
     sensitivity: bool = Field(True, description="Estimate the smallest detectable planted cues.")
+    reference: ReferenceCueSpec = Field(
+        ReferenceCueSpec(), description="Reference cue sizes the check must be able to reveal "
+        "(also `stimforge check --ref-level-step/--ref-gap/--ref-pitch-step`).")
 
 
 class EventsSpec(_Model):
@@ -431,13 +474,30 @@ class Recipe(_Model):
     constraints: ConstraintsSpec = ConstraintsSpec()
     retime: RetimeSpec = RetimeSpec()
     pitch: PitchSpec = PitchSpec()
-    level: LevelSpecPolicy = LevelSpecPolicy()
+    loudness: LoudnessSpec = LoudnessSpec()
     output: OutputSpec = OutputSpec()
     check: CheckSpec = CheckSpec()
     events: EventsSpec = EventsSpec()
 
     # Set by load_recipe; excluded from the schema and from dumps.
     source: Path | None = Field(None, exclude=True, json_schema_extra={"hidden": True})
+
+    @model_validator(mode="before")
+    @classmethod
+    def _old_sections(cls, data: Any) -> Any:
+        # the loudness section was called `level` (a word the hierarchy already uses)
+        if isinstance(data, dict) and "level" in data:
+            if "loudness" in data:
+                raise _At(("level",), "give the loudness settings once, under 'loudness' "
+                          "('level' is its old name)")
+            _renamed("the section 'level'", "'loudness'", "target_dbfs, fade, ...")
+            data = {("loudness" if k == "level" else k): v for k, v in data.items()}
+        return data
+
+    @property
+    def level(self) -> LoudnessSpec:
+        """Old name of :attr:`loudness`, kept for one release."""
+        return self.loudness
 
     @field_validator("name")
     @classmethod
@@ -497,10 +557,10 @@ class Recipe(_Model):
                       f"silences); at most {MAX_TRIAL_SECONDS:g} s are allowed: use fewer "
                       "groups_per_trial, a shorter duration, or fewer or smaller levels")
         slot = rt.slot_lengths[0]
-        fade_n = max(2, round(self.level.fade * rt.sr))
+        fade_n = max(2, round(self.loudness.fade * rt.sr))
         if fade_n > max(2, slot // 2):
-            raise _At(("level", "fade"), f"a {self.level.fade:g} s fade in and out does not fit "
-                      f"the {self.hierarchy.unit.duration:g} s slot ({slot} samples at "
+            raise _At(("loudness", "fade"), f"a {self.loudness.fade:g} s fade in and out does "
+                      f"not fit the {self.hierarchy.unit.duration:g} s slot ({slot} samples at "
                       f"{rt.sr} Hz): at most {slot // 2 / rt.sr:.4g} s (half the slot)")
 
     def _check_events(self, names: list[str]) -> None:
@@ -890,8 +950,8 @@ retime:
   out_of_range: error        # error | warn | cut-pad
   align: onset               # onset | steepest-rise (then align_offset: 0.1)
 
-pitch: {policy: flat}        # flat | level (tone languages) | keep
-level: {target_dbfs: -26, fade: 0.01}
+pitch: {policy: flat}        # flat | contour (tone languages) | keep
+loudness: {target_dbfs: -26, fade: 0.01}   # RMS of each token's active part; fades in seconds
 output: {sample_rate: 44100, subtype: PCM_24}
 check: {run: true, alpha: 0.01}
 """

@@ -16,10 +16,10 @@ Pipeline for one token and one slot length ``N``
 3. **Align**: ``onset`` moves the acoustic onset (envelope within ``onset_threshold_db`` of
    the peak) to the slot start; ``steepest-rise`` moves the steepest envelope rise to
    ``retime.align_offset`` seconds into the slot.  Content shifts; length stays ``N``.
-4. **Fade**: raised cosine of ``level.fade`` seconds at both ends; first and last samples 0.
-5. **Level**: gain so that the RMS over the active part equals ``level.target_dbfs``.
+4. **Fade**: raised cosine of ``loudness.fade`` seconds at both ends; first and last samples 0.
+5. **Level**: gain so that the RMS over the active part equals ``loudness.target_dbfs``.
 6. **Peak guard** (set-wide, in :func:`process_tokens`): if any token would peak above
-   ``level.peak_ceiling_dbfs``, every token of the set is lowered by the same gain.
+   ``loudness.peak_ceiling_dbfs``, every token of the set is lowered by the same gain.
 
 Records (:class:`TokenRecord`) carry F0 before/after measured by Praat (not WORLD), levels,
 gains, the alignment shift and any warnings.
@@ -252,12 +252,12 @@ class BackendRequest:
     n_samples : int
         Exact output length.
     retime : RetimeSpec
-    pitch_policy : {"flat", "level", "keep"}
+    pitch_policy : {"flat", "contour", "keep"}
     target_hz : float or None, Hz
     cache : AnalysisCache or None
     token_id : str
     reference_f0_hz : float or None, Hz
-        Geometric mean of the input token's voiced Praat F0: the height that the ``level``
+        Geometric mean of the input token's voiced Praat F0: the height that the ``contour``
         policy moves to ``target_hz`` (None: use the backend's own F0 estimate).
     """
 
@@ -342,7 +342,9 @@ def _validate_token(x: np.ndarray, *, sr: int, token_id: str = "") -> np.ndarray
             f"tokens need at least {MIN_TOKEN_S * 1000:.0f} ms (check the corpus trim threshold)"
         )
     if float(np.max(np.abs(a))) == 0.0:
-        raise AudioInputError(f"{name}: the token is digital silence; its level cannot be set")
+        raise AudioInputError(f"{name}: the token is digital silence; its level cannot be set: "
+                              "replace the recording or remove its row from the corpus index "
+                              "(stimforge inspect flags silent tokens)")
     return a
 
 
@@ -424,7 +426,7 @@ def world_resynthesize(
     envelope and the aperiodicity are interpolated linearly between the two nearest frames,
     voicing comes from the nearest frame, and log-F0 is interpolated over voiced frames only.
     The pitch policy then sets the voiced frames; aperiodicity is never overwritten.  For
-    ``level`` the token's height is ``reference_f0_hz`` (Praat's reading of the input, so the
+    ``contour`` the token's height is ``reference_f0_hz`` (Praat's reading of the input, so the
     output's Praat geometric mean lands on the target), else the geometric mean of the
     token's voiced WORLD frames.
 
@@ -698,7 +700,7 @@ def _process_one(
 ) -> _Partial:
     """Backend, alignment, fade and the token's own gain; Praat F0 of the result."""
     ref = None
-    if pitch.policy == "level":
+    if pitch.policy == "contour":
         ref = _praat_in_context(x, sr=sr).geometric_mean_hz
         ref = float(ref) if np.isfinite(ref) else None
     req = BackendRequest(x=x, sr=sr, n_samples=n_samples, retime=retime,
@@ -919,12 +921,17 @@ def _run_workers(payloads: list[dict[str, Any]], *, jobs: int, progress: bool) -
             from concurrent.futures import ProcessPoolExecutor, as_completed
 
             ctx = mp.get_context("spawn")
-            with ProcessPoolExecutor(max_workers=min(int(jobs), len(payloads)),
-                                     mp_context=ctx) as ex:
+            ex = ProcessPoolExecutor(max_workers=min(int(jobs), len(payloads)), mp_context=ctx)
+            try:
                 futs = {ex.submit(_worker, p): i for i, p in enumerate(payloads)}
                 for fut in as_completed(futs):
                     results[futs[fut]] = fut.result()
                     bar.update(1)
+            except BaseException:
+                # an error, Ctrl-C or SIGTERM: drop the tokens not started, do not wait for them
+                ex.shutdown(wait=False, cancel_futures=True)
+                raise
+            ex.shutdown(wait=True)
         else:
             for i, p in enumerate(payloads):
                 results[i] = _worker(p)
@@ -998,7 +1005,7 @@ def process_tokens(
     set_gain = peak_guard_gain_db(peaks, ceiling_dbfs=level.peak_ceiling_dbfs)
     if set_gain < 0:
         msg = (f"peak guard: a token would peak at {max(peaks):.2f} dBFS, above "
-               f"level.peak_ceiling_dbfs {level.peak_ceiling_dbfs:g}: the whole set was lowered "
+               f"loudness.peak_ceiling_dbfs {level.peak_ceiling_dbfs:g}: the whole set was lowered "
                f"by {-set_gain:.2f} dB (active RMS now {level.target_dbfs + set_gain:.2f} dBFS)")
         logger.warning(msg)
         set_warnings.append(msg)

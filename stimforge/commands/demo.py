@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..errors import BuildError
+from .build import jobs_arg
 
 
 def demo_recipe_path() -> Path:
@@ -25,7 +26,8 @@ def add_parser(sub) -> None:
                    help="build folder (default: ./stimforge-demo; must be new or empty)")
     p.add_argument("--overwrite", action="store_true",
                    help="replace an earlier demo build there (other files are kept)")
-    p.add_argument("--jobs", type=int, default=None, help="worker processes for re-timing")
+    p.add_argument("--jobs", type=jobs_arg, default=None,
+                   help="worker processes for re-timing (1-256)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
     p.set_defaults(run=run)
 

@@ -62,16 +62,35 @@ def run(args) -> int:
     except ValidationError as exc:
         msgs = "; ".join(f"{e['loc'][0]}: {e['msg']}" for e in exc.errors(include_url=False))
         raise CorpusError(f"bad trim option: {msgs}") from None
+    if args.sr is not None and not 1000 <= args.sr <= 768000:
+        raise CorpusError(f"--sr must be a sample rate from 1000 to 768000 Hz, got {args.sr}")
     if args.tsv is not None and args.tsv.exists() and not _is_inspect_table(args.tsv):
         raise CorpusError(f"--tsv {args.tsv} exists and is not a table stimforge inspect wrote; "
                           "choose another path (stimforge never overwrites your files)")
+    if args.tsv is not None:  # before the measuring: a folder on the way must be one
+        from .build import file_in_the_way
+
+        blocker = file_in_the_way(args.tsv)
+        if blocker is not None:
+            raise CorpusError(f"--tsv {args.tsv}: {blocker} is a file, not a folder; choose "
+                              "another path")
+        try:
+            args.tsv.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise CorpusError(f"--tsv {args.tsv}: cannot create its folder "
+                              f"({exc.filename or args.tsv.parent}: {exc.strerror or exc}); "
+                              "choose another path") from None
     report = inspect_corpus(
         args.corpus, sr=args.sr, slot_duration=args.slot, trim=trim,
         progress=sys.stderr.isatty(),
     )
     print(report.format_table(include_bad=False))
     if args.tsv is not None:
-        report.write_tsv(args.tsv)
+        try:
+            report.write_tsv(args.tsv)
+        except OSError as exc:
+            raise CorpusError(f"--tsv {args.tsv}: cannot write it ({exc.strerror or exc}); "
+                              "free some disk space or choose another path") from None
         print(f"wrote {args.tsv}")
     if report.bad:
         print(

@@ -66,9 +66,20 @@ def run(args) -> int:
         entries += _read_labels_file(args.labels_file)
     if not entries:
         raise CorpusError("give at least one LABEL or a --labels-file")
-    index = make_corpus(
-        entries, args.out_dir, voice=args.voice, rate_wpm=args.rate, pitch=args.pitch,
-        progress=sys.stderr.isatty(),
-    )
+    from .build import file_in_the_way
+
+    blocker = file_in_the_way(args.out_dir / "x")
+    if blocker is not None:
+        raise CorpusError(f"{args.out_dir}: {blocker} is a file, not a folder; choose another "
+                          "OUT_DIR")
+    try:
+        index = make_corpus(
+            entries, args.out_dir, voice=args.voice, rate_wpm=args.rate, pitch=args.pitch,
+            progress=sys.stderr.isatty(),
+        )
+    except OSError as exc:  # a folder on the way that is a file, no permission, a full disk
+        raise CorpusError(f"{args.out_dir}: cannot write the corpus there "
+                          f"({exc.filename or args.out_dir}: {exc.strerror or exc}); choose "
+                          "another OUT_DIR") from None
     print(f"wrote {len(entries)} token(s) and {index}; check them with: stimforge inspect {args.out_dir}")
     return 0
