@@ -121,7 +121,7 @@ def test_recipe_rate_table_and_trial_samples():
         ({"trials__duration": 10.0}, r"exactly one of 'groups_per_trial' or 'duration'"),
         ({"trials__groups_per_trial": None, "trials__duration": 10.5},
          r"not a whole number of cycles .* nearest valid lengths: 10 s or 11 s"),
-        ({"level__target_dbfs": 0}, r"level\.target_dbfs"),
+        ({"loudness__target_dbfs": 0}, r"loudness\.target_dbfs"),
         ({"trials__per_conditon": 3}, r"unknown key 'per_conditon'; did you mean 'per_condition'"),
     ],
 )

@@ -89,7 +89,7 @@ def child_build(recipe: str, out: str) -> None:
     t = time.perf_counter()
     res = build(recipe, out=out, progress=False)
     wall = time.perf_counter() - t
-    audio_s = sum(r["duration"] for r in res.trials if r["list"] == 1)
+    audio_s = sum(r["duration"] for r in res.trial_rows if r["list"] == 1)
     rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(json.dumps({"wall": wall, "audio_s": audio_s, "rss_mb": rss_mb}))
 
