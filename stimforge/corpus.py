@@ -59,7 +59,7 @@ from .acoustics import active_bounds, db, peak_dbfs, praat_f0, rms_dbfs
 from .audio_io import AudioFileProblem, sha256_file
 from .audio_io import read_audio as _read_native
 from .errors import CorpusError
-from .recipe import CorpusSpec, QCSpec, TrimSpec
+from .recipe import CorpusSpec, QCSpec, RetimeSpec, TrimSpec
 from .timing import exact, round_half_up, seconds_to_samples, window_samples
 
 __all__ = [
@@ -79,7 +79,8 @@ __all__ = [
 
 log = logging.getLogger("stimforge")
 
-FLAGS = ("clipped", "too_quiet", "silent", "no_voicing", "longer_than_slot", "duplicate_file")
+FLAGS = ("clipped", "too_quiet", "silent", "no_voicing", "longer_than_slot",
+         "too_short_to_stretch", "duplicate_file")
 SILENT_PEAK_DBFS = -90.0  # below one 16-bit step (20*log10(1/32768) = -90.3 dBFS)
 NOISE_FRAME = 0.020  # s, frames for the noise-floor estimate
 NOISE_PERCENTILE = 10.0
@@ -924,6 +925,7 @@ def inspect_corpus(
     *,
     sr: int | None = None,
     slot_duration: float | None = None,
+    max_stretch: float | None = RetimeSpec().stretch_range[1],
     trim: TrimSpec = TrimSpec(),
     qc: QCSpec = QCSpec(),
     progress: bool = False,
@@ -937,7 +939,11 @@ def inspect_corpus(
     sr : int, Hz, optional
         Rate to measure at; None measures each file at its own rate.
     slot_duration : float, seconds, optional
-        Flag tokens longer than this after trimming.
+        Flag tokens longer than this after trimming (``longer_than_slot``).
+    max_stretch : float, optional
+        With ``slot_duration``: flag tokens shorter than ``slot_duration / max_stretch``
+        (``too_short_to_stretch``), which re-timing would have to stretch beyond its range;
+        default the upper end of the default ``retime.stretch_range``; None turns it off.
 
     Returns
     -------
@@ -950,6 +956,13 @@ def inspect_corpus(
     index, tokens, bad = _scan_index(
         path, sr=sr, trim=trim, qc=qc, slot_duration=slot_duration, progress=progress
     )
+    if slot_duration is not None and max_stretch is not None:
+        # a token shorter than slot / max_stretch would need more stretching than the range
+        # allows (retime.stretch_range): flag it here, as the build would refuse it
+        shortest = float(slot_duration) / float(max_stretch)
+        tokens = [dataclasses.replace(t, qc=dataclasses.replace(
+                      t.qc, flags=t.qc.flags + ("too_short_to_stretch",)))
+                  if t.qc.duration_trimmed < shortest else t for t in tokens]
     return InspectReport(
         index=index, tokens=tuple(tokens), bad=tuple(bad), sr=sr, slot_duration=slot_duration,
         trim=trim, qc=qc,

@@ -450,6 +450,11 @@ def test_cli_inspect_exit_0(tmp_path, rng, capsys):
         assert name in out
     assert "longer_than_slot 1" in out  # only the 0.31 s burst exceeds 0.25 s (calc)
     assert (tmp_path / "o.tsv").exists()
+    # the 0.12 s burst is shorter than 0.25 s / 1.7 = 0.147 s: beyond the default stretch range
+    assert "too_short_to_stretch 1" in out  # (calc)
+    code = cli.main(["inspect", str(folder), "--slot", "0.25", "--max-stretch", "2.5"])
+    out = capsys.readouterr().out
+    assert code == 0 and "too_short_to_stretch" not in out  # 0.25 / 2.5 = 0.1 s < 0.12 s (calc)
 
 
 def test_cli_inspect_exit_2_names_every_broken_file(tmp_path, rng, capsys):

@@ -26,7 +26,13 @@ def add_parser(sub) -> None:
     p.add_argument("--tsv", type=Path, metavar="PATH", help="also write the table as TSV here")
     p.add_argument(
         "--slot", type=float, metavar="SECONDS",
-        help="slot duration: flag tokens longer than this after trimming",
+        help="slot duration: flag tokens longer than this after trimming, and tokens too short "
+             "to be stretched to it (shorter than SECONDS / --max-stretch)",
+    )
+    p.add_argument(
+        "--max-stretch", type=float, default=None, metavar="FACTOR",
+        help="with --slot: the largest stretch factor allowed (default: the upper end of the "
+             "default retime.stretch_range, 1.7; give your recipe's)",
     )
     p.add_argument(
         "--sr", type=int, metavar="HZ",
@@ -80,8 +86,11 @@ def run(args) -> int:
             raise CorpusError(f"--tsv {args.tsv}: cannot create its folder "
                               f"({exc.filename or args.tsv.parent}: {exc.strerror or exc}); "
                               "choose another path") from None
+    if args.max_stretch is not None and not args.max_stretch > 1:
+        raise CorpusError(f"--max-stretch must be a factor > 1, got {args.max_stretch}")
+    stretch = {} if args.max_stretch is None else {"max_stretch": args.max_stretch}
     report = inspect_corpus(
-        args.corpus, sr=args.sr, slot_duration=args.slot, trim=trim,
+        args.corpus, sr=args.sr, slot_duration=args.slot, trim=trim, **stretch,
         progress=sys.stderr.isatty(),
     )
     print(report.format_table(include_bad=False))
