@@ -40,4 +40,8 @@ def run(args) -> int:
     print(f"stimforge demo: building {path}")
     result = build(path, out=args.out, overwrite=args.overwrite, jobs=args.jobs,
                    progress=not args.quiet)
-    return report(result)
+    code = report(result)
+    print(f"next: a simulated EEG session through epoch and analyze (README, \"From the build "
+          f"to the recording and back\"): stimforge simulate --build {result.out} --list 1 "
+          "--sfreq 500 --out sim_raw.fif")
+    return code

@@ -96,4 +96,10 @@ def run(args) -> int:
           + ", ".join(f"{c} h{r}: {n}" for (c, r), n in counts.items()))
     print(f"wrote {fif} and {npz} ({len(md)} epochs x {len(res.epochs.ch_names)} channels x "
           f"{len(res.epochs.times)} samples)")
+    if not args.delay:
+        print("caution: no --delay given: the windows start at the trigger codes. Sound reaches "
+              "the ear later (sound-card buffers, tubing): measure that delay on your own "
+              "hardware and pass it as --delay MS, or every phase is off by it.")
+    print("Recordings are of people: analyse them only under your ethics approval; local rules "
+          "and your lab's licensed practice decide.")
     return 0
