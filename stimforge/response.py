@@ -523,10 +523,18 @@ def _correct_where(p: np.ndarray, ok: np.ndarray, targets: Sequence[Target],
                    method: str) -> np.ndarray:
     """Correct ``p`` (rows, targets) over the entries where ``ok`` holds, per kind of target;
     NaN elsewhere (phase differences are tested only where there is a response)."""
+    return _correct_by_kind(p, np.array([t.kind for t in targets]), method, ok=ok)
+
+
+def _correct_by_kind(p: np.ndarray, kinds: np.ndarray, method: str,
+                     ok: np.ndarray | None = None) -> np.ndarray:
+    """Correct ``p`` (rows, targets) as two families: the structure-rate columns and the
+    unit-rate columns (each over every row), only where ``ok`` holds; NaN elsewhere."""
+    p = np.asarray(p, dtype=float)
+    sel_ok = np.ones(p.shape, bool) if ok is None else np.asarray(ok, bool)
     out = np.full(p.shape, np.nan)
-    kinds = np.array([t.kind for t in targets])
     for kind in ("structure", "unit"):
-        sel = np.asarray(ok, bool) & (kinds == kind)[None, :]
+        sel = sel_ok & (np.asarray(kinds) == kind)[None, :]
         if sel.any():
             out[sel] = _correct(p[sel], method)
     return out
@@ -1127,11 +1135,7 @@ def analyze_participant(es: EpochSet, *, rates: RateTable, participant: str | No
         Zc = Z[sel]
         m = rate_measures(Zc, grid=grid)
         m["p"] = np.asarray(m[key_p])
-        pc = np.full(m["p"].shape, np.nan)
-        for kind in ("structure", "unit"):
-            cols = kinds == kind
-            if cols.any():
-                pc[:, cols] = _correct(m["p"][:, cols], correction)
+        pc = _correct_by_kind(m["p"], kinds, correction)
         m["p_corrected"] = pc
         m["significant"] = pc <= alpha
         m["itpc_null"] = np.full(m["itpc"].shape, stats.itpc_null_mean(n))
@@ -1490,11 +1494,7 @@ def _group(parts: Sequence[ParticipantResponse], *, alpha: float, correction: st
         ev = np.stack([take(p, c, "evoked") for p in ps])
         t2 = stats.t2circ(ev, axis=0) if len(ps) >= 3 else None
         p_ = np.asarray(tt.pvalue, dtype=float)
-        pc = np.full(p_.shape, np.nan)
-        for kind in ("structure", "unit"):
-            cols = kinds == kind
-            if cols.any():
-                pc[:, cols] = _correct(p_[:, cols], correction)
+        pc = _correct_by_kind(p_, kinds, correction)
         gm[c] = {"itpc_excess": exc, "itpc": itpc, "p": p_, "p_corrected": pc,
                  "significant": pc <= alpha, "participants": [p.participant for p in ps]}
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -1524,11 +1524,7 @@ def _group(parts: Sequence[ParticipantResponse], *, alpha: float, correction: st
                            for p in ps])
             sf = stats.sign_flip_test(da - db, rng=rng, n_perm=n_perm)
             p_ = np.asarray(sf.p, dtype=float)
-            pc = np.full(p_.shape, np.nan)
-            for kind in ("structure", "unit"):
-                cols = kinds == kind
-                if cols.any():
-                    pc[:, cols] = _correct(p_[:, cols], correction)
+            pc = _correct_by_kind(p_, kinds, correction)
             for r, ch in enumerate(chans):
                 for j, t in enumerate(tg):
                     contrast_rows.append({
