@@ -6,7 +6,8 @@ Each subcommand lives in ``stimforge/commands/<name>.py`` and exposes ``add_pars
 Exit statuses (the README's table lists them per command):
 
 * 0 success (``check``: no cue found); 1 ``check``/``build``: a cue found (``epoch``: the
-  recorded codes disagree with the plan); 3 ``check`` only: inconclusive (see its module);
+  recorded codes disagree with the plan); 3 ``check``, ``build``, ``demo``: inconclusive
+  (no cue, but a reference cue could not have been revealed; see stimforge/verify_report.py);
 * 2 bad input or an unusable environment (a full disk, a folder that cannot be written): the
   message names the file, field or value and what would fix it;
 * 70 an internal error, i.e. a bug: one line on stderr says so and where the traceback was

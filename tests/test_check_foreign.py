@@ -145,3 +145,7 @@ def test_pitch_rise_caught_by_f0_only(sets, tmp_path):
     med = line["position_medians"]
     assert max(range(4), key=lambda i: med[i]) == 3
     assert med[3] - max(med[:3]) >= 2.0
+    # the boundary contrast of the line's last unit finds it too, with the step in semitones
+    last = [r for r in rep["boundary"] if (r["feature"], r["level"], r["where"]) ==
+            ("f0_st", "line", "last")][0]
+    assert last["significant"] and last["value"] >= 2.0

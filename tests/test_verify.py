@@ -219,17 +219,25 @@ def test_plain_files_window_is_whole_top_cycles(tmp_path):
 # --------------------------------------------------------------------------------------------
 def test_clean_set_passes_with_sensitivity(sets):
     rep = checked(sets, "clean", sensitivity=True)
-    assert rep.passed and rep.exit_code == 0, rep.format_table()
+    # no cue; the tokens' own F0 varies by ~2 semitones (100-140 Hz), so a 1-semitone final
+    # pitch step on one unit in eight may be beyond this set: then the verdict says so (exit 3)
+    assert rep.passed and rep.state in ("pass", "inconclusive"), rep.format_table()
+    assert rep.exit_code == {"pass": 0, "inconclusive": 3}[rep.state]
     assert all(u["clear"] for u in rep.unit_rate)  # the 4 Hz unit rate shows a clear peak
-    sens = {s["cue"]: s for s in rep.sensitivity}
+    line = {s["cue"]: s for s in rep.sensitivity if s["level"] == "line"}
     # The mark to aim for (issue 5): a 1 dB line-initial step must be revealed; the planted
     # 60 ms gap and 3-semitone rise of the behaviour tests too.
-    assert sens["level_step"]["smallest_detected"] is not None
-    assert sens["level_step"]["smallest_detected"] <= 1.0
-    assert sens["gap"]["smallest_detected"] <= 60.0
-    assert sens["pitch_step"]["smallest_detected"] <= 3.0
+    assert line["level_step"]["smallest_detected"] is not None
+    assert line["level_step"]["smallest_detected"] <= 1.0
+    assert line["gap"]["smallest_detected"] <= 60.0
+    assert line["pitch_step"]["smallest_detected"] <= 3.0
+    assert line["level_step"]["reference_detected"] is True  # 1 dB (the default reference)
     assert "would have shown" in rep.summary_line()
-    assert sens["level_step"]["evaluations"] >= 2
+    assert line["level_step"]["evaluations"] >= 2
+    assert line["level_step"]["detected_in"] == ["all"]
+    # the verdict names every reference cue it cannot vouch for, first
+    for m in rep.limits:
+        assert f"{m['level']}-" in rep.summary_line().split(":")[0]
 
 
 def test_level_step_3db_is_caught_by_level_and_envelope(sets):
@@ -260,8 +268,13 @@ def test_pitch_rise_is_caught_by_f0_not_envelope(sets):
     assert rep.exit_code == 1
     top = rep.significant[0]
     assert (top["feature"], top["level"]) == ("f0_st", "line")
-    med = top["position_medians"]  # semitones re 100 Hz, positions 1..4 in the line
-    assert med[3] - np.mean(med[:3]) == pytest.approx(3.0, abs=0.5)
+    # the strongest test is now the boundary contrast: the line-final unit against the
+    # line's other units, 3 semitones up (planted) [calc]
+    assert (top["measure"], top["where"]) == ("boundary", "last")
+    assert top["value"] == pytest.approx(3.0, abs=0.5)
+    pos = next(r for r in rep.features if (r["feature"], r["level"]) == ("f0_st", "line"))
+    med = pos["position_medians"]  # semitones re 100 Hz, positions 1..4 in the line
+    assert pos["significant"] and med[3] - np.mean(med[:3]) == pytest.approx(3.0, abs=0.5)
     # A pitch cue leaves the envelope alone: no spectral test is significant.
     assert not [r for r in rep.significant if r["measure"] in V.MEASURES]
 
@@ -437,9 +450,10 @@ def test_build_folder(tmp_path, capsys):
     # each distinct stim_file once: list duplicates and repeats are not counted twice
     assert js["design"]["conditions"] == {"intact": 8, "scrambled": 8}
     assert js["design"]["window"] == 8.0 and js["design"]["sample_rate"] == 22050
-    assert js["schema_version"] == 1 and js["verdict"]["exit_code"] == 0
+    assert js["schema_version"] == 2 and js["verdict"]["exit_code"] == 0
+    assert js["verdict"]["state"] == "pass" and js["verdict"]["vouched"] is False  # not estimated
     assert js["verdict"]["family_size"] == len(js["spectral"]) + len(js["features"]) + len(
-        js["joins"]["tests"])
+        js["boundary"]) + len(js["joins"]["tests"])
     assert {r["condition"] for r in js["spectral"]} == {"intact", "scrambled"}
     page = (tmp_path / "out" / "check.html").read_text()
     assert page.count("data:image/png;base64,") >= 3 and "cannot vouch" in page
@@ -507,7 +521,7 @@ def test_cli_files_cue_exit_1(sets, capsys):
                      "--level", "line=4", "--level", "pair=2", "--no-sensitivity", "--quiet"])
     out = capsys.readouterr().out
     assert code == 1
-    assert "verdict: CUE FOUND (exit 1)" in out and "level by position" in out
+    assert "verdict: CUE FOUND (exit 1)" in out and "loudness by position" in out
     assert "Acoustic cue found" in out and CAUTION in out
 
 
@@ -539,7 +553,10 @@ BAD = [
     (lambda r, p: [str(r / "garbage.wav"), str(p[0]), "--unit-duration", "0.25", "--level",
                    "line=4"], r"garbage.wav: not a readable audio file"),
     (lambda r, p: [*map(str, p), "--unit-duration", "5", "--level", "line=4"],
-     r"does not hold one line cycle"),
+     r"do not hold one line cycle"),
+    (lambda r, p: [*map(str, p), "--unit-duration", "0.25", "--level", "line=4", "--offset",
+                   "100"], r"so --offset 100 s starts the grid after its end; give an offset below"),
+    (lambda r, p: [str(r / "nobuild"), "--report", str(p[0])], r"--report \S+: is a file"),
     (lambda r, p: [str(p[0]), str(r / "long.wav"), "--unit-duration", "0.25", "--level",
                    "line=4"], r"unequal length"),
     (lambda r, p: [str(p[0]), str(r / "rate8k.wav"), "--unit-duration", "0.25", "--level",
@@ -579,10 +596,11 @@ def test_report_api(sets, tmp_path):
     assert d["verdict"]["passed"] is True and d["sensitivity"][0]["cue"] == "level_step"
     assert {"evoked", "itpc", "t2circ"} == {r["measure"] for r in d["spectral"]}
     assert "snr_db" in d["spectral"][0]
-    assert "PASS" in rep.format_table() and "<table" in rep._repr_html_()
+    assert rep.verdict in rep.format_table() and "<table" in rep._repr_html_()
+    assert d["verdict"]["state"] == rep.state and d["verdict"]["exit_code"] == rep.exit_code
     assert "passed=True" in repr(rep)
     p = rep.write_json(tmp_path / "r.json")
-    assert json.loads(p.read_text())["schema_version"] == 1
+    assert json.loads(p.read_text())["schema_version"] == 2
 
 
 def test_cli_never_overwrites_a_file_that_is_not_a_report(sets, tmp_path, capsys):
@@ -599,3 +617,15 @@ def test_cli_never_overwrites_a_file_that_is_not_a_report(sets, tmp_path, capsys
     first = ours.read_text()
     assert cli.main(args[:-1] + [str(ours)]) == 0
     assert '"schema_version"' in ours.read_text() and len(first) > 100
+
+
+def test_check_refuses_an_interrupted_build_folder(tmp_path, capsys):
+    # a killed build leaves UNFINISHED.txt (stimforge.export): check must not take it for a build
+    from stimforge.export import UNFINISHED
+
+    folder = tmp_path / "half"
+    folder.mkdir()
+    (folder / UNFINISHED).write_text("interrupted\n", encoding="utf-8")
+    (folder / "manifest.json").write_text("{}", encoding="utf-8")
+    assert cli.main(["check", str(folder), "--quiet"]) == 2
+    assert f"holds {UNFINISHED}" in capsys.readouterr().err

@@ -62,16 +62,18 @@ def add_parser(sub) -> None:
 
 
 def report(result) -> int:
-    """Print the closing summary; return the exit code (1 if the check found a cue)."""
+    """Print the closing summary; return the check's exit code (0 pass, 1 a cue, 3 inconclusive:
+    no cue, but a reference cue could not have been revealed), 0 without a check."""
     print(result.summary)
     print(f"build folder: {result.out}")
-    if result.check is not None:
-        verdict = f"{result.check.verdict} ({result.check.verdict_meaning})"
-        print(f"acoustic check: {verdict}; report {result.out / 'check' / 'check.html'} "
-              f"(processing report beside it); all tests: stimforge check {result.out} --table")
-    if result.check is not None and not result.check.passed:
+    if result.check is None:
+        return 0
+    verdict = f"{result.check.verdict} ({result.check.verdict_meaning})"
+    print(f"acoustic check: {verdict}; report {result.out / 'check' / 'check.html'} "
+          f"(processing report beside it); all tests: stimforge check {result.out} --table")
+    if not result.check.passed:
         return 1
-    return 0
+    return int(getattr(result.check, "exit_code", 0))
 
 
 def run(args) -> int:

@@ -1,18 +1,22 @@
 """Benchmark of the acoustic check.
 
 Prints, measured in one run on this machine:
-* real-time factors (CPU-bound wall time / audio duration) of the broadband envelope, the
-  auditory envelope, the whole measurement step (envelopes + per-unit features incl. Praat F0 +
-  joins), the tests, and the sensitivity step, on ``--minutes`` of audio (default 60);
+* the cost of each stage on ``--minutes`` of audio (default 60): the broadband envelope alone
+  (the reference), the auditory envelope, Praat F0 as the check runs it (one analysis per trial
+  at 8 kHz) and, on a subset, Praat on every unit alone (what it replaces) with the agreement
+  of the two;
+* the whole check (measuring, tests, grid fit, sensitivity) with ``--jobs 1`` and with
+  ``--jobs N`` (default 2), each as a ratio to the broadband envelopes alone (the issue's aim:
+  at most 3x), and whether the two reports are identical;
 * the demo-sized case (32 trials x 12 s at 22.05 kHz) end to end with sensitivity;
 * peak memory (VmHWM of a fresh process running ``check_files``; tracemalloc's peak during the
-  check) at two set lengths: trials
-  are read one at a time, so it should not grow much with the set's length.
+  check) at two set lengths: trials are read one at a time, so it should not grow much with
+  the set's length.
 
 The audio is synthetic syllable-like tokens (harmonic complexes, two formants, noise onset,
 random durations, 10 ms fades) placed on a 250 ms grid, 8 s per trial, lines of 4, pairs of 2.
 
-Run:  python tests/bench/bench_verify.py  [--minutes 60] [--mem 10 30]
+Run:  python tests/bench/bench_verify.py  [--minutes 60] [--jobs 2] [--mem 10 30]
 """
 
 from __future__ import annotations
@@ -32,6 +36,7 @@ import soundfile as sf
 
 SR = 22050
 SLOT = 0.25
+LEVELS = [("line", 4), ("pair", 2)]
 
 
 def _token(rng, sr):
@@ -90,8 +95,7 @@ def child(folder: str) -> None:
     paths = sorted(Path(folder).glob("*.wav"))
     base = _hwm_kb()
     tracemalloc.start()
-    rep = check_files(paths, unit_duration=SLOT, levels=[("line", 4), ("pair", 2)],
-                      sensitivity=True, progress=False)
+    rep = check_files(paths, unit_duration=SLOT, levels=LEVELS, sensitivity=True, progress=False)
     _, traced_peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
     peak = _hwm_kb()
@@ -103,6 +107,7 @@ def child(folder: str) -> None:
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--minutes", type=float, default=60.0)
+    ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--mem", type=float, nargs=2, default=(10.0, 30.0))
     ap.add_argument("--child", help=argparse.SUPPRESS)
     ap.add_argument("--memory-only", action="store_true")
@@ -125,6 +130,36 @@ def main() -> None:
               f"during the check {r['traced_peak_mb']:.1f} MB")
 
 
+def _praat_paths(V, paths, n_units: int):
+    """Seconds of the per-trial Praat path and of Praat on every unit alone, and their
+    difference per unit (semitones), on the given files."""
+    import soxr
+
+    from stimforge.acoustics import praat_f0, semitones
+
+    t_trial = t_unit = 0.0
+    diffs = []
+    for p in paths:
+        x, sr = sf.read(p)
+        b = [math.floor(k * SLOT * sr + 0.5) for k in range(n_units + 1)]
+        t = time.perf_counter()
+        times, f0 = praat_f0(soxr.resample(x, sr, V.F0_SR, quality="HQ"), sr=V.F0_SR)
+        per_trial = []
+        for k in range(n_units):
+            m = (times >= b[k] / sr + 0.005) & (times < b[k + 1] / sr - 0.005)
+            v = f0[m][np.isfinite(f0[m])]
+            per_trial.append(float(semitones(np.median(v), V.F0_REF)) if v.size >= 3 else np.nan)
+        t_trial += time.perf_counter() - t
+        t = time.perf_counter()
+        for k in range(n_units):
+            _, f = praat_f0(x[b[k]:b[k + 1]], sr=sr)
+            f = f[np.isfinite(f)]
+            if f.size >= 3 and np.isfinite(per_trial[k]):
+                diffs.append(per_trial[k] - float(semitones(np.median(f), V.F0_REF)))
+        t_unit += time.perf_counter() - t
+    return t_trial, t_unit, np.abs(np.array(diffs))
+
+
 def speed(a, V) -> None:
     with tempfile.TemporaryDirectory() as d:
         n_trials = int(round(a.minutes * 60 / 8))
@@ -133,9 +168,8 @@ def speed(a, V) -> None:
         print(f"made {n_trials} trials x 8 s at {SR} Hz ({a.minutes:g} min) in "
               f"{time.perf_counter() - t0:.0f} s")
         audio_s = n_trials * 8.0
-        # envelopes alone, on every trial
         tb = ta = 0.0
-        for p in paths:
+        for p in paths:  # envelopes alone, on every trial
             x, sr = sf.read(p)
             t = time.perf_counter()
             V.broadband_envelope(x, sr=sr, env_sr=200.0)
@@ -143,23 +177,40 @@ def speed(a, V) -> None:
             t = time.perf_counter()
             V.auditory_envelope(x, sr=sr, env_sr=200.0)
             ta += time.perf_counter() - t
-        print(f"broadband envelope: {tb:.1f} s, real-time factor {tb / audio_s:.4f}")
-        print(f"auditory envelope:  {ta:.1f} s, real-time factor {ta / audio_s:.4f}")
-        t = time.perf_counter()
-        rep = V.check_files(paths, unit_duration=SLOT, levels=[("line", 4), ("pair", 2)],
-                            sensitivity=True, progress=False)
-        tt = time.perf_counter() - t
-        tm = rep.timings
-        print(f"whole check: {tt:.1f} s (RTF {tt / audio_s:.4f}); measure {tm['measure']:.1f} s "
-              f"(RTF {tm['measure'] / audio_s:.4f}), tests {tm['tests']:.2f} s, sensitivity "
-              f"{tm['sensitivity']:.1f} s (RTF {tm['sensitivity'] / audio_s:.4f}, "
-              f"{sum(s['evaluations'] for s in rep.sensitivity)} family evaluations)")
-        print("verdict:", rep.summary_line())
-        # demo-sized case
+        print(f"broadband envelope alone: {tb:.1f} s ({audio_s / tb:.0f}x real time) = the "
+              "reference (1.0x)")
+        print(f"auditory envelope:        {ta:.1f} s ({audio_s / ta:.0f}x real time), "
+              f"{ta / tb:.1f}x the broadband")
+        sub = paths[: min(20, len(paths))]
+        tp, tu, diffs = _praat_paths(V, sub, 32)
+        scale = len(paths) / len(sub)
+        print(f"Praat F0, one analysis per trial at 8 kHz (as the check runs it): {tp * scale:.1f} s "
+              f"({tp * scale / tb:.1f}x the broadband); Praat on every unit alone at "
+              f"{SR} Hz: {tu * scale:.1f} s ({tu / tp:.1f}x the per-trial path; both scaled from "
+              f"{len(sub)} trials); per-unit medians agree within {np.percentile(diffs, 95):.3f} "
+              f"semitones (95th percentile), {diffs.max():.3f} at most ({diffs.size} units)")
+        reports = {}
+        for jobs in sorted({1, max(1, a.jobs)}):
+            t = time.perf_counter()
+            rep = V.check_files(paths, unit_duration=SLOT, levels=LEVELS, sensitivity=True,
+                                progress=False, jobs=jobs)
+            tt = time.perf_counter() - t
+            tm = rep.timings
+            reports[jobs] = rep
+            n_eval = sum(s["evaluations"] for s in rep.sensitivity)
+            print(f"whole check, --jobs {jobs}: {tt:.1f} s ({audio_s / tt:.0f}x real time) = "
+                  f"{tt / tb:.1f}x the broadband envelopes alone (aim: <= 3x); measuring "
+                  f"{tm['measure']:.1f} s ({tm['measure'] / tb:.1f}x), tests + grid fit "
+                  f"{tm['tests']:.2f} s, sensitivity {tm['sensitivity']:.1f} s "
+                  f"({n_eval} family evaluations, {tm['sensitivity'] / tb:.2f}x)")
+        if len(reports) > 1:
+            same = reports[1].to_dict() == reports[max(reports)].to_dict()
+            print(f"--jobs 1 and --jobs {max(reports)} reports identical: {same}")
+        print("verdict:", reports[1].summary_line())
         demo = make_set(Path(d) / "demo", 32, seconds=12.0, seed=2)
         t = time.perf_counter()
-        rep = V.check_files(demo, unit_duration=SLOT, levels=[("line", 4), ("pair", 2)],
-                            sensitivity=True, progress=False)
+        rep = V.check_files(demo, unit_duration=SLOT, levels=LEVELS, sensitivity=True,
+                            progress=False)
         print(f"demo-sized (32 x 12 s, 22.05 kHz) with sensitivity: "
               f"{time.perf_counter() - t:.1f} s; timings {json.dumps(rep.timings)}")
 
