@@ -240,7 +240,7 @@ def test_deep_breakdown_names_the_planted_token(deep):
     assert b["by_label"][0]["name"] == "l00"
     assert b["by_token"][0]["median_flagged"] - b["compared"]["median"] == pytest.approx(4.0, abs=1.5)
     assert b["driver"] == "rendering" and "other tokens of the same labels" in b["explanation"]
-    assert b["setting"] and "level." in b["setting"]  # a build folder: the recipe setting named
+    assert b["setting"] and "loudness.target_dbfs" in b["setting"]  # a build folder: the recipe setting named
     assert "what drives" in rep.format_text()  # the strongest tests' breakdowns, top few
     js = rep.to_dict()
     assert any(r.get("breakdown") for r in js["boundary"] if r["significant"])

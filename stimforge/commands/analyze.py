@@ -13,17 +13,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-
-def _level(text: str) -> tuple[str, int]:
-    name, sep, size = text.partition("=")
-    try:
-        n = int(size)
-    except ValueError:
-        n = -1
-    if not sep or not name.strip() or n < 2:
-        raise argparse.ArgumentTypeError(
-            f"{text!r}: expected NAME=SIZE with a whole SIZE >= 2, e.g. line=4")
-    return name.strip(), n
+from ._grid_options import add_grid_options
 
 
 def _roi(text: str) -> tuple[str, list[str]]:
@@ -55,11 +45,7 @@ def add_parser(sub) -> None:
                    help=".npz or -epo.fif epochs of the analysed window; one per participant")
     p.add_argument("--build", type=Path, metavar="DIR",
                    help="the stimforge build folder that was played (rates, conditions, hearings)")
-    p.add_argument("--unit-duration", type=float, metavar="S",
-                   help="slot duration of the lowest unit, seconds (without --build)")
-    p.add_argument("--level", action="append", type=_level, default=None, metavar="NAME=SIZE",
-                   help="a level above the unit, lowest first; repeat for each level")
-    p.add_argument("--unit-name", default="unit", help="name of the lowest unit (default unit)")
+    add_grid_options(p, when="without --build")
     p.add_argument("--json", type=Path, metavar="PATH", help="write the JSON results here")
     p.add_argument("--report", type=Path, metavar="DIR",
                    help="write analysis.html and its figures into DIR")

@@ -27,6 +27,7 @@ from pathlib import Path
 
 from ..defaults import (ALPHA, REFERENCE_GAP_MS, REFERENCE_LEVEL_STEP_DB,
                         REFERENCE_PITCH_STEP_ST)
+from ._grid_options import add_grid_options
 
 #: Exit status of an inconclusive verdict (no cue, but a reference cue not vouched for).
 EXIT_INCONCLUSIVE = 3
@@ -43,18 +44,6 @@ def _offset(text: str):
     if not (v >= 0 and v < float("inf")):
         raise argparse.ArgumentTypeError(f"{text!r}: expected seconds >= 0 or 'auto'")
     return v
-
-
-def _level(text: str) -> tuple[str, int]:
-    name, sep, size = text.partition("=")
-    try:
-        n = int(size)
-    except ValueError:
-        n = -1
-    if not sep or not name.strip() or n < 2:
-        raise argparse.ArgumentTypeError(
-            f"{text!r}: expected NAME=SIZE with a whole SIZE >= 2, e.g. line=4")
-    return name.strip(), n
 
 
 def _is_our_report(path) -> bool:
@@ -78,15 +67,11 @@ def add_parser(sub) -> None:
     )
     p.add_argument("inputs", nargs="+", type=Path, metavar="BUILD_DIR | FILE.wav",
                    help="a stimforge build folder, or one or more WAV files")
-    p.add_argument("--unit-duration", type=float, metavar="S",
-                   help="(files) slot duration of the lowest unit, seconds")
-    p.add_argument("--level", action="append", type=_level, default=None, metavar="NAME=SIZE",
-                   help="(files) a level above the unit, lowest first; repeat for each level")
+    add_grid_options(p, when="plain WAV files only")
     p.add_argument("--offset", type=_offset, default=0.0, metavar="S|auto",
                    help="(files) where the grid starts in every file, seconds (default 0); "
                    "'auto' estimates it from the files' first acoustic onsets and says what "
                    "it chose")
-    p.add_argument("--unit-name", default="unit", help="(files) name of the lowest unit")
     p.add_argument("--json", type=Path, metavar="PATH", help="write the JSON report here")
     p.add_argument("--report", type=Path, metavar="DIR", help="write check.html into DIR")
     p.add_argument("--alpha", type=float, default=ALPHA,

@@ -13,7 +13,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from .analyze import _level
+from ._grid_options import add_grid_options
 
 
 def _ints(text: str) -> list[int]:
@@ -36,10 +36,7 @@ def add_parser(sub) -> None:
     )
     p.add_argument("recipe", nargs="?", type=Path, help="a stimforge recipe (YAML)")
     p.add_argument("--build", type=Path, metavar="DIR", help="a build folder instead")
-    p.add_argument("--unit-duration", type=float, metavar="S", help="or: unit slot, seconds")
-    p.add_argument("--level", action="append", type=_level, default=None, metavar="NAME=SIZE",
-                   help="a level above the unit, lowest first (with --unit-duration)")
-    p.add_argument("--unit-name", default="unit")
+    add_grid_options(p, when="without a recipe or --build")
     p.add_argument("--window", type=float, metavar="S",
                    help="analysed seconds per trial (with --unit-duration)")
     p.add_argument("--rate-level", metavar="NAME",
