@@ -28,6 +28,7 @@ from .errors import GridError
 from .timing import exact, seconds_to_samples, unit_start
 
 __all__ = ["LevelRate", "RateTable", "RateWarning", "TargetBin", "rate_table", "grid_from_numbers",
+           "checked_levels",
            "MAX_LEVELS"]
 
 #: More levels than this above the unit is no design of this field (2-4 are usual).
@@ -339,6 +340,34 @@ def rate_table(
     return table
 
 
+def checked_levels(unit_duration: float, levels: Sequence[tuple[str, int]], *,
+                   option: str = "--level") -> tuple[float, list[tuple[str, int]]]:
+    """Validate a unit duration and level sizes given as plain numbers.
+
+    Returns ``(unit_duration, [(name, size), ...])``; raises :class:`GridError` naming the
+    option (``--unit-duration``, ``--level``) and the value to change.
+    """
+    try:
+        T = float(unit_duration)
+    except (TypeError, ValueError) as exc:
+        raise GridError(f"--unit-duration: {unit_duration!r} is not a number of seconds") from exc
+    if not (T > 0 and math.isfinite(T)):
+        raise GridError(f"--unit-duration must be > 0 seconds, got {unit_duration!r}")
+    if not levels:
+        raise GridError(f"give at least one level above the unit, e.g. {option} line=4")
+    if len(levels) > MAX_LEVELS:
+        raise GridError(f"{option}: {len(levels)} levels above the unit; at most {MAX_LEVELS} "
+                        "are supported (designs of this kind use 1-4)")
+    lv = []
+    for name, size in levels:
+        ok = isinstance(size, (int, float, Fraction)) and not isinstance(size, bool)
+        if not str(name) or not ok or int(size) != size or int(size) < 2:
+            raise GridError(f"{option} {name}={size}: a level needs a name and a whole "
+                            "size >= 2 (units of the level below per group)")
+        lv.append((str(name), int(size)))
+    return T, lv
+
+
 def grid_from_numbers(*, unit_duration: float, levels: Sequence[tuple[str, int]], sr: int,
                       n_top_groups: int, unit_name: str = "unit", lead_in: bool = False,
                       silence_before: float = 0.0, silence_after: float = 0.0,
@@ -359,24 +388,7 @@ def grid_from_numbers(*, unit_duration: float, levels: Sequence[tuple[str, int]]
     GridError
         Naming the option (``--unit-duration``, ``--level``) and the value to change.
     """
-    try:
-        T = float(unit_duration)
-    except (TypeError, ValueError) as exc:
-        raise GridError(f"--unit-duration: {unit_duration!r} is not a number of seconds") from exc
-    if not (T > 0 and math.isfinite(T)):
-        raise GridError(f"--unit-duration must be > 0 seconds, got {unit_duration!r}")
-    if not levels:
-        raise GridError(f"give at least one level above the unit, e.g. {option} line=4")
-    if len(levels) > MAX_LEVELS:
-        raise GridError(f"{option}: {len(levels)} levels above the unit; at most {MAX_LEVELS} "
-                        "are supported (designs of this kind use 1-4)")
-    lv = []
-    for name, size in levels:
-        ok = isinstance(size, (int, float, Fraction)) and not isinstance(size, bool)
-        if not str(name) or not ok or int(size) != size or int(size) < 2:
-            raise GridError(f"{option} {name}={size}: a level needs a name and a whole "
-                            "size >= 2 (units of the level below per group)")
-        lv.append((str(name), int(size)))
+    T, lv = checked_levels(unit_duration, levels, option=option)
     names = [unit_name] + [n for n, _ in lv]
     if len(set(names)) != len(names):
         raise GridError(f"{option}: level names must differ from each other and from the unit "

@@ -72,7 +72,7 @@ from .defaults import (ALPHA, REFERENCE_GAP_MS, REFERENCE_LEVEL_STEP_DB,
 from .envelopes import (AUDITORY_SR, COMPRESSION, auditory_envelope, broadband_envelope,
                         choose_env_sr, gammatone_bank)
 from .errors import CheckInputError, GridError
-from .grid import RateTable, grid_from_numbers
+from .grid import RateTable, checked_levels, grid_from_numbers
 from .timing import seconds_to_samples, unit_start
 from .verify_contrast import (BOUNDARIES, aligned_rank_test, boundary_units, breakdown,
                               element_units)
@@ -440,19 +440,9 @@ def load_files(paths: Sequence[str | Path], *, unit_duration: float,
     if not paths:
         raise CheckInputError("no files given; pass one WAV file per trial")
     try:
-        T = float(unit_duration)
-    except (TypeError, ValueError) as exc:
-        raise CheckInputError(f"--unit-duration: {unit_duration!r} is not a number") from exc
-    if not (T > 0 and math.isfinite(T)):
-        raise CheckInputError(f"--unit-duration must be > 0 seconds, got {unit_duration!r}")
-    if not levels:
-        raise CheckInputError("give at least one level above the unit, e.g. --level line=4")
-    lv = []
-    for name, size in levels:
-        if not str(name) or int(size) < 2 or int(size) != size:
-            raise CheckInputError(f"--level {name}={size}: a level needs a name and a whole "
-                                  "size >= 2 (units of the level below per group)")
-        lv.append((str(name), int(size)))
+        T, lv = checked_levels(unit_duration, levels)
+    except GridError as exc:
+        raise CheckInputError(str(exc)) from None
     offset = _check_offset(offset)
     top_units = int(np.prod([s for _, s in lv]))
     lens = []
