@@ -194,15 +194,15 @@ def write_report(analysis: ResponseAnalysis, folder: str | Path) -> Path:
         if p.notes:
             parts.append("<ul class='notes'>" + "".join(f"<li>{html.escape(n)}</li>"
                                                         for n in p.notes) + "</ul>")
-        parts.append("<h3>Findings (significant first)</h3>")
-        parts.append(_table(_order(p.finding_rows), _F_COLS))
+        sig = [r for r in _order(p.finding_rows) if r.get("significant")]
+        parts.append(f"<h3>Significant findings ({len(sig)} of {len(p.finding_rows)} tests)</h3>")
+        parts.append(_table(sig, _F_COLS, limit=len(sig) or 1))
         if p.phase_rows:
-            parts.append("<h3>Phase, second minus first hearing</h3>")
             rows = [r for r in p.phase_rows if r["kind"] == "structure"]
             rows.sort(key=lambda r: (not r["responding"], r["p"]))
-            parts.append("<p class='notes'>Rows where the rate shows a response come first; "
-                         "elsewhere the phase is that of noise.</p>")
-            parts.append(_table(rows, _PH_COLS))
+            responding = [r for r in rows if r["responding"]]
+            parts.append("<h3>Phase, second minus first hearing, where the rate responds</h3>")
+            parts.append(_table(responding, _PH_COLS, limit=len(responding) or 1))
         figure(p.plot_spectra(), f"{tag}_snr",
                "Evoked SNR (amplitude over the mean of the noise bins) at every frequency; grey: "
                "channels, black: their mean, orange: the channel with the smallest p; vertical "
@@ -216,6 +216,16 @@ def write_report(analysis: ResponseAnalysis, folder: str | Path) -> Path:
                    "orange: second); arrows: mean vectors, length = ITPC.")
         figure(p.plot_topomap(), f"{tag}_topomap",
                "Topographies of ITPC per condition and rate; white dots: significant channels.")
+        parts.append(f"<details><summary>All {len(p.finding_rows)} tests of {html.escape(p.participant)} "
+                     "(significant first)</summary>"
+                     + _table(_order(p.finding_rows), _F_COLS, limit=len(p.finding_rows))
+                     + "</details>")
+        if p.phase_rows:
+            rows = [r for r in p.phase_rows if r["kind"] == "structure"]
+            rows.sort(key=lambda r: (not r["responding"], r["p"]))
+            parts.append("<details><summary>Phase rows of every channel and rate (where the rate "
+                         "shows no response the phase is that of noise)</summary>"
+                         + _table(rows, _PH_COLS, limit=len(rows)) + "</details>")
     doc = ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'/>"
            f"<title>{_TITLE}</title><meta name='viewport' content='width=device-width'/>"
            f"<style>{_CSS}</style></head><body>" + "\n".join(parts) + "</body></html>\n")
