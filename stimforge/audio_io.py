@@ -179,10 +179,23 @@ def read_audio(path: str | Path) -> tuple[np.ndarray, int]:
 
 
 def write_wav(path: str | Path, x: np.ndarray, *, sr: int, subtype: str) -> None:
-    """Write a WAV file (``subtype`` e.g. ``"PCM_24"``; PCM is byte-reproducible)."""
+    """Write a WAV file (``subtype`` e.g. ``"PCM_24"``; PCM is byte-reproducible).
+
+    Encoded in memory by libsndfile, then written to disk in one call, so that a failing write
+    (a full disk, a quota) raises ``OSError`` with its errno and the file's name, instead of
+    whatever libsndfile makes of a short write.
+    """
+    import io
+
     import soundfile as sf
 
-    sf.write(str(path), x, sr, subtype=subtype, format="WAV")
+    buf = io.BytesIO()
+    sf.write(buf, x, sr, subtype=subtype, format="WAV")
+    try:
+        with open(path, "wb") as fh:
+            fh.write(buf.getbuffer())
+    except OSError as exc:
+        raise OSError(exc.errno, exc.strerror, str(path)) from exc
 
 
 # --------------------------------------------------------------------------- tables

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import errno
 import html
-import io
 import logging
 import os
 import platform
@@ -20,7 +19,7 @@ import dataclasses
 from dataclasses import dataclass, field
 from importlib import metadata
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 import soundfile as sf
@@ -31,9 +30,11 @@ from .assemble import assemble_trial, trial_layout, unit_rows
 from .errors import BuildError, RecipeError
 from .events import (EVENT_COLUMNS, PLAYLIST_COLUMNS, CodeTable, assign_values, code_table,
                      jitter_rng, marker_channel, plan_list, playlist_rows)
-from .export import (LOG, MANIFEST, UNFINISHED, commit_output, discard_partial, json_dumps,
-                     prepare_output, sha256_file, write_tsv)
+from .audio_io import write_wav as _write_wav  # (tests replace it to simulate a full disk)
+from .export import (LOG, MANIFEST, commit_output, discard_partial, json_dumps,
+                     output_digests, prepare_output, sha256_file, write_tsv)
 from .recipe import Recipe, load_recipe
+from .timing import table_seconds
 
 __all__ = ["build", "BuildResult", "open_build", "BuildEstimate", "estimate_build", "TRIAL_COLUMNS",
            "UNIT_COLUMNS"]
@@ -136,21 +137,6 @@ def checked_jobs(jobs: Any) -> int:
         log.warning("--jobs %d: this machine has %d CPU(s); extra workers only cost memory",
                     int(jobs), cpus)
     return int(jobs)
-
-
-def _write_wav(path: Path, x: np.ndarray, *, sr: int, subtype: str) -> None:
-    """Write one WAV: encoded in memory by libsndfile, then written to disk in one call.
-
-    A failing write (a full disk, a quota) then raises ``OSError`` with its errno and the
-    file's name, instead of whatever libsndfile makes of a short write.
-    """
-    buf = io.BytesIO()
-    sf.write(buf, x, sr, subtype=subtype, format="WAV")
-    try:
-        with open(path, "wb") as fh:
-            fh.write(buf.getbuffer())
-    except OSError as exc:
-        raise OSError(exc.errno, exc.strerror, str(path)) from exc
 
 
 def _warnings_section(warns: Any) -> str:
@@ -690,10 +676,6 @@ def build(
         ``BuildError`` for an output folder that may not be used, a set too large to build, or
         a write that failed (full disk, permission).  The output folder is then unchanged.
     """
-    from .corpus import load_corpus
-    from .design import make_design
-    from .retime import process_tokens
-
     if not isinstance(recipe, Recipe):
         recipe = load_recipe(recipe)
     if seed is not None:
@@ -703,7 +685,6 @@ def build(
     out = Path(out) if out is not None else recipe.base_dir / "build" / recipe.name
     out = out.absolute()
     rates = recipe.rates()
-    sr = rates.sr
     size = estimate_build(recipe, check=run_check)
     size.refuse(allow_large=allow_large)  # before anything is read or written
     t0 = time.monotonic()
@@ -717,76 +698,12 @@ def build(
     try:
         note(f"stimforge {__version__}: building {recipe.name!r} (seed {recipe.seed}) into {out}")
         note(f"estimate: {size.format()}")
-        corpus = load_corpus(recipe.corpus, sr=sr, slot_duration=rates.rows[0].period)
-        note(f"corpus: {len(corpus.tokens)} tokens, {len(corpus.labels)} labels at {sr} Hz")
-        pool = {lab: [t.id for t in toks] for lab, toks in corpus.by_label().items()}
-        design = make_design(recipe, pool, rng=recipe.seed)
-        used = sorted({u.token_id for p in design.trials for u in p.units})
-        by_id = {t.id: t for t in corpus.tokens}
-        tokens = [by_id[i] for i in used]
-        note(f"design: {len(design.trials)} trials, {len(design.presentations)} presentations, "
-             f"{len(tokens)} distinct tokens")
-        target = recipe.pitch.target_hz
-        if target is None and recipe.pitch.policy != "keep":
-            target = corpus.median_f0()
-        base_n = rates.slot_lengths[0]  # rendered once at the shorter slot (see fit_to_slot)
-        processed = process_tokens(tokens, sr=sr, n_samples=base_n, retime=recipe.retime,
-                                   pitch=recipe.pitch, level=recipe.loudness, target_f0=target,
-                                   jobs=jobs, progress=progress)
-        # warnings the recipe opted into (out_of_range: warn / cut-pad...) are WARNINGs and go
-        # into summary.txt; the first few are shown, all of them are in build.log
-        for i, w in enumerate(processed.warnings):
-            note(f"re-timing: {w}", logging.WARNING if i < _SHOWN_WARNINGS else logging.DEBUG)
-        if len(processed.warnings) > _SHOWN_WARNINGS:
-            log.warning("re-timing: %d more warning(s), all listed in summary.txt",
-                        len(processed.warnings) - _SHOWN_WARNINGS)
-
-        stim_dir = tmp / "stimuli"
-        stim_dir.mkdir()
-        _, starts, total = trial_layout(rates)
-        file_info: dict[tuple[str, int], dict[str, Any]] = {}
-        units_rows: list[dict[str, Any]] = []
-        from tqdm.auto import tqdm
-
-        for plan in tqdm(design.trials, desc="assembling", unit="trial", disable=not progress):
-            stim_file = f"stimuli/{plan.stem}.wav"
-            x = assemble_trial(
-                [(u.token_id, u.reversed) for u in plan.units],
-                get=processed.get,
-                rates=rates,
-            )
-            if np.max(np.abs(x)) > 1.0:
-                raise BuildError(f"{stim_file}: a sample exceeds full scale; this is a bug")
-            _write_wav(tmp / stim_file, x, sr=sr, subtype=recipe.output.subtype)
-            if recipe.events.marker_channel:
-                _write_marked(tmp, plan.stem, x, recipe, int(starts[plan.lead_in_units]))
-            onset_unit = plan.lead_in_units
-            file_info[(plan.condition, plan.trial)] = {
-                "stim_file": stim_file,
-                "kind": plan.kind,
-                "duration": round(total / sr, 6),
-                "n_units": len(plan.units),
-                "lead_in_units": plan.lead_in_units,
-                "analysis_onset": round(int(starts[onset_unit]) / sr, 6),
-                "analysis_duration": round(rates.window, 6),
-                "lufs": round(_lufs(x, sr), 3),
-                "peak_dbfs": round(peak_dbfs(x), 3),
-            }
-            units_rows.extend(unit_rows(plan, stim_file=stim_file, rates=rates))
-
-        trial_rows = []
-        for p in design.presentations:
-            info = file_info[(p.condition, p.trial)]
-            trial_rows.append(
-                {"stim_file": info["stim_file"], "condition": p.condition, "kind": info["kind"],
-                 "trial": p.trial, "repetition": p.repetition, "list": p.list, "order": p.order,
-                 **{k: info[k] for k in TRIAL_COLUMNS[8:]}}
-            )
-        codes = _event_codes(recipe, trial_rows)  # the `value` column and events/ files
-        trial_rows = assign_values(trial_rows, codes)
-        write_tsv(tmp / "trials.tsv", trial_rows, TRIAL_COLUMNS)
-        _write_events(tmp, recipe, trial_rows, codes)
-        write_tsv(tmp / "units.tsv", units_rows, UNIT_COLUMNS)
+        corpus, design, tokens = _corpus_and_design(recipe, rates, note)
+        processed = _render_tokens(recipe, corpus, tokens, rates, jobs=jobs, progress=progress,
+                                   note=note)
+        file_info, units_rows = _assemble_trials(tmp, recipe, design, processed, rates,
+                                                 progress=progress)
+        trial_rows, codes = _write_tables(tmp, recipe, design, file_info, units_rows)
 
         summary = _summary(recipe, rates, design, trial_rows, processed, out)
         summary += _warnings_section(processed.warnings)
@@ -834,6 +751,96 @@ def build(
                                warnings=tuple(processed.warnings))
 
 
+def _corpus_and_design(recipe: Recipe, rates, note: Callable[[str], None]):
+    """The corpus at the output rate, the design, and the distinct tokens it uses."""
+    from .corpus import load_corpus
+    from .design import make_design
+
+    sr = rates.sr
+    corpus = load_corpus(recipe.corpus, sr=sr, slot_duration=rates.rows[0].period)
+    note(f"corpus: {len(corpus.tokens)} tokens, {len(corpus.labels)} labels at {sr} Hz")
+    pool = {lab: [t.id for t in toks] for lab, toks in corpus.by_label().items()}
+    design = make_design(recipe, pool, rng=recipe.seed)
+    used = sorted({u.token_id for p in design.trials for u in p.units})
+    by_id = {t.id: t for t in corpus.tokens}
+    tokens = [by_id[i] for i in used]
+    note(f"design: {len(design.trials)} trials, {len(design.presentations)} presentations, "
+         f"{len(tokens)} distinct tokens")
+    return corpus, design, tokens
+
+
+def _render_tokens(recipe: Recipe, corpus, tokens, rates, *, jobs: int | None, progress: bool,
+                   note: Callable[..., None]):
+    """Every token re-timed once, at the shorter slot length (see assemble.fit_to_slot)."""
+    from .retime import process_tokens
+
+    target = recipe.pitch.target_hz
+    if target is None and recipe.pitch.policy != "keep":
+        target = corpus.median_f0()
+    processed = process_tokens(tokens, sr=rates.sr, n_samples=rates.slot_lengths[0],
+                               retime=recipe.retime, pitch=recipe.pitch, level=recipe.loudness,
+                               target_f0=target, jobs=jobs, progress=progress)
+    # warnings the recipe opted into (out_of_range: warn / cut-pad...) are WARNINGs and go
+    # into summary.txt; the first few are shown, all of them are in build.log
+    for i, w in enumerate(processed.warnings):
+        note(f"re-timing: {w}", logging.WARNING if i < _SHOWN_WARNINGS else logging.DEBUG)
+    if len(processed.warnings) > _SHOWN_WARNINGS:
+        log.warning("re-timing: %d more warning(s), all listed in summary.txt",
+                    len(processed.warnings) - _SHOWN_WARNINGS)
+    return processed
+
+
+def _assemble_trials(tmp: Path, recipe: Recipe, design, processed, rates, *, progress: bool):
+    """Write every trial's WAV (one in memory at a time); its trials.tsv facts and units.tsv rows."""
+    from tqdm.auto import tqdm
+
+    sr = rates.sr
+    (tmp / "stimuli").mkdir()
+    _, starts, total = trial_layout(rates)
+    file_info: dict[tuple[str, int], dict[str, Any]] = {}
+    units_rows: list[dict[str, Any]] = []
+    for plan in tqdm(design.trials, desc="assembling", unit="trial", disable=not progress):
+        stim_file = f"stimuli/{plan.stem}.wav"
+        x = assemble_trial([(u.token_id, u.reversed) for u in plan.units], get=processed.get,
+                           rates=rates)
+        if np.max(np.abs(x)) > 1.0:
+            raise BuildError(f"{stim_file}: a sample exceeds full scale; this is a bug")
+        _write_wav(tmp / stim_file, x, sr=sr, subtype=recipe.output.subtype)
+        if recipe.events.marker_channel:
+            _write_marked(tmp, plan.stem, x, recipe, int(starts[plan.lead_in_units]))
+        file_info[(plan.condition, plan.trial)] = {
+            "stim_file": stim_file,
+            "kind": plan.kind,
+            "duration": table_seconds(total, sr=sr),
+            "n_units": len(plan.units),
+            "lead_in_units": plan.lead_in_units,
+            "analysis_onset": table_seconds(starts[plan.lead_in_units], sr=sr),
+            "analysis_duration": round(rates.window, 6),
+            "lufs": round(_lufs(x, sr), 3),
+            "peak_dbfs": round(peak_dbfs(x), 3),
+        }
+        units_rows.extend(unit_rows(plan, stim_file=stim_file, rates=rates))
+    return file_info, units_rows
+
+
+def _write_tables(tmp: Path, recipe: Recipe, design, file_info, units_rows):
+    """trials.tsv (one row per presentation, with its code), units.tsv and the events/ files."""
+    trial_rows = []
+    for p in design.presentations:
+        info = file_info[(p.condition, p.trial)]
+        trial_rows.append(
+            {"stim_file": info["stim_file"], "condition": p.condition, "kind": info["kind"],
+             "trial": p.trial, "repetition": p.repetition, "list": p.list, "order": p.order,
+             **{k: info[k] for k in TRIAL_COLUMNS[8:]}}
+        )
+    codes = _event_codes(recipe, trial_rows)  # the `value` column and events/ files
+    trial_rows = assign_values(trial_rows, codes)
+    write_tsv(tmp / "trials.tsv", trial_rows, TRIAL_COLUMNS)
+    _write_events(tmp, recipe, trial_rows, codes)
+    write_tsv(tmp / "units.tsv", units_rows, UNIT_COLUMNS)
+    return trial_rows, codes
+
+
 def _event_codes(recipe: Recipe, trial_rows: list[dict[str, Any]]) -> CodeTable:
     return code_table(trial_rows, conditions=[c.name for c in recipe.conditions],
                       settings=recipe.events)
@@ -870,11 +877,7 @@ def _write_marked(tmp: Path, stem: str, x: np.ndarray, recipe: Recipe, onset: in
 
 def _write_manifest(tmp, recipe, rates, corpus, tokens, design, processed, *, check,
                     codes: CodeTable | None = None) -> dict:
-    outputs = {
-        p.relative_to(tmp).as_posix(): sha256_file(p)
-        for p in sorted(tmp.rglob("*"))
-        if p.is_file() and p.name not in (MANIFEST, LOG, UNFINISHED)
-    }
+    outputs = output_digests(tmp)
     manifest = {
         "stimforge_version": __version__,
         "recipe": _portable_recipe(recipe),

@@ -150,6 +150,14 @@ def _siblings(out: Path, tag: str) -> list[Path]:
     return [out.parent / n for n in names if n.startswith(prefix)]
 
 
+def output_digests(folder: Path) -> dict[str, str]:
+    """SHA-256 of every file a build wrote into ``folder`` (relative POSIX path -> digest), for
+    the manifest's ``outputs``; the manifest, the log and the unfinished note are left out."""
+    return {p.relative_to(folder).as_posix(): sha256_file(p)
+            for p in sorted(Path(folder).rglob("*"))
+            if p.is_file() and p.name not in (MANIFEST, LOG, UNFINISHED)}
+
+
 def unfinished_reason(folder: str | Path) -> str | None:
     """Why ``folder`` is not a finished build but an interrupted build's leftover, or None.
 

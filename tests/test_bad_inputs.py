@@ -515,7 +515,9 @@ def test_full_disk_is_a_clear_error_and_leaves_nothing(small, tmp_path, capsys, 
 
 
 def test_real_short_write_names_the_file(tmp_path, monkeypatch):
-    """_write_wav turns the system's ENOSPC into an OSError naming the WAV."""
+    """audio_io.write_wav turns the system's ENOSPC into an OSError naming the WAV."""
+    from stimforge import audio_io
+
     class Full:
         def __init__(self, *a, **k):
             pass
@@ -529,9 +531,9 @@ def test_real_short_write_names_the_file(tmp_path, monkeypatch):
         def write(self, data):
             raise OSError(errno.ENOSPC, "No space left on device")
 
-    monkeypatch.setattr(build_mod, "open", Full, raising=False)  # the module's open() only
+    monkeypatch.setattr(audio_io, "open", Full, raising=False)  # the module's open() only
     with pytest.raises(OSError) as info:
-        build_mod._write_wav(tmp_path / "x.wav", np.zeros(100), sr=SR, subtype="PCM_16")
+        audio_io.write_wav(tmp_path / "x.wav", np.zeros(100), sr=SR, subtype="PCM_16")
     assert info.value.errno == errno.ENOSPC and info.value.filename == str(tmp_path / "x.wav")
 
 
