@@ -869,7 +869,7 @@ def _write_marked(tmp: Path, stem: str, x: np.ndarray, recipe: Recipe, onset: in
     """A stereo copy of a trial: speech left, marker pulses (trial and analysis onset) right."""
     ev = recipe.events
     m = marker_channel(len(x), sr=recipe.output.sample_rate, onsets=[0, onset],
-                       pulse=ev.marker_pulse, level=ev.marker_level)
+                       pulse=ev.marker_pulse, amplitude=ev.marker_amplitude)
     (tmp / "stimuli-marker").mkdir(exist_ok=True)
     _write_wav(tmp / "stimuli-marker" / f"{stem}.wav", np.column_stack([x, m]),
                sr=recipe.output.sample_rate, subtype=recipe.output.subtype)

@@ -98,7 +98,7 @@ class EventSettings:
         trial onset and at the analysis onset.
     marker_pulse : float, seconds
         Length of each marker pulse.
-    marker_level : float, 0-1
+    marker_amplitude : float, 0-1
         Amplitude of the marker pulse (full scale = 1).
     """
 
@@ -112,7 +112,7 @@ class EventSettings:
     jitter: float = 0.0
     marker_channel: bool = False
     marker_pulse: float = 0.005
-    marker_level: float = 0.5
+    marker_amplitude: float = 0.5
 
     @classmethod
     def from_any(cls, obj: Any) -> EventSettings:
@@ -438,7 +438,7 @@ def playlist_rows(events: Sequence[Mapping[str, Any]], *,
 
 
 def marker_channel(n_samples: int, *, sr: int, onsets: Sequence[int], pulse: float,
-                   level: float) -> np.ndarray:
+                   amplitude: float) -> np.ndarray:
     """A marker channel: rectangular pulses of ``pulse`` seconds at the given samples.
 
     Parameters
@@ -449,19 +449,19 @@ def marker_channel(n_samples: int, *, sr: int, onsets: Sequence[int], pulse: flo
     onsets : sequence of int
         Sample indices of the pulses (the trial onset 0 and the analysis onset).
     pulse : float, seconds > 0
-    level : float, 0 < level <= 1
+    amplitude : float, 0 < amplitude <= 1 (full scale 1)
 
     Returns
     -------
     ndarray, shape (n_samples,), float64
     """
-    if not (0 < level <= 1) or pulse <= 0:
-        raise RecipeError(f"events: marker_level must be in (0, 1] and marker_pulse > 0, got "
-                          f"{level}, {pulse}")
+    if not (0 < amplitude <= 1) or pulse <= 0:
+        raise RecipeError(f"events: marker_amplitude must be in (0, 1] and marker_pulse > 0, "
+                          f"got {amplitude}, {pulse}")
     n = max(1, round_half_up(exact(pulse) * int(sr)))
     y = np.zeros(int(n_samples))
     for o in onsets:
         if not 0 <= int(o) < n_samples:
             raise RecipeError(f"events: marker at sample {o} outside the {n_samples}-sample file")
-        y[int(o):int(o) + n] = level
+        y[int(o):int(o) + n] = amplitude
     return y

@@ -455,7 +455,7 @@ class EventsSpec(_Model):
         "audio-to-trigger converters.",
     )
     marker_pulse: float = Field(0.005, gt=0, le=0.1, description="Length of a marker pulse, s.")
-    marker_level: float = Field(0.5, gt=0, le=1, description="Marker pulse amplitude (full "
+    marker_amplitude: float = Field(0.5, gt=0, le=1, description="Marker pulse amplitude (full "
                                 "scale 1).")
 
 

@@ -165,14 +165,14 @@ def test_plan_of_an_empty_list_is_refused():
 
 
 def test_marker_channel_pulses():
-    y = marker_channel(1000, sr=1000, onsets=[0, 300], pulse=0.005, level=0.5)
+    y = marker_channel(1000, sr=1000, onsets=[0, 300], pulse=0.005, amplitude=0.5)
     # calc: 5 ms at 1 kHz = 5 samples at each onset
     assert np.flatnonzero(y).tolist() == [0, 1, 2, 3, 4, 300, 301, 302, 303, 304]
     assert set(y[y > 0]) == {0.5}
     with pytest.raises(RecipeError, match="outside the 1000-sample file"):
-        marker_channel(1000, sr=1000, onsets=[1000], pulse=0.005, level=0.5)
-    with pytest.raises(RecipeError, match="marker_level"):
-        marker_channel(1000, sr=1000, onsets=[0], pulse=0.005, level=1.5)
+        marker_channel(1000, sr=1000, onsets=[1000], pulse=0.005, amplitude=0.5)
+    with pytest.raises(RecipeError, match="marker_amplitude"):
+        marker_channel(1000, sr=1000, onsets=[0], pulse=0.005, amplitude=1.5)
 
 
 # --------------------------------------------------------------------------- recipe section
