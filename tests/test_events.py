@@ -13,6 +13,7 @@ import pytest
 import soundfile as sf
 import yaml
 
+from small_sets import write_small_set
 from stimforge.audio_io import read_tsv
 from stimforge.errors import RecipeError
 from stimforge.events import (
@@ -204,50 +205,9 @@ def test_recipe_events_section_defaults_and_errors():
 
 
 # --------------------------------------------------------------------------- in a build
-def _token(f0: float, dur: float, sr: int, amp: float) -> np.ndarray:
-    t = np.arange(int(dur * sr)) / sr
-    x = sum(np.sin(2 * np.pi * h * f0 * t) / h for h in range(1, 8))
-    env = np.minimum(1, t / 0.02) * np.minimum(1, (dur - t) / 0.04)
-    return amp * x * env / np.max(np.abs(x))
-
-
 def small_recipe(folder: Path, **events) -> Path:
     """A 3-condition, 2-list set of synthetic tokens, cut/pad re-timing (fast)."""
-    tok = folder / "tokens"
-    tok.mkdir(parents=True, exist_ok=True)
-    labels = ["ba", "di", "ku", "mo", "se", "ta"]
-    lines = ["label,file"]
-    g = np.random.default_rng(5)
-    for lab in labels:
-        x = _token(110 + 30 * g.random(), 0.16 + 0.06 * g.random(), 16000, 0.3)
-        sf.write(tok / f"{lab}.wav", np.concatenate([np.zeros(200), x, np.zeros(200)]), 16000,
-                 subtype="PCM_16")
-        lines.append(f"{lab},{lab}.wav")
-    (tok / "index.csv").write_text("\n".join(lines) + "\n")
-    (folder / "material.txt").write_text(
-        "ba di | ku mo || se ta | di ku ||\nmo se | ta ba || ku ta | ba se ||\n"
-        "di mo | se ku || ta di | mo ba ||\n")
-    data = {
-        "name": "ev", "seed": 11,
-        "hierarchy": {"unit": {"name": "syllable", "duration": 0.25},
-                      "levels": [{"name": "word", "size": 2}, {"name": "line", "size": 2}]},
-        "corpus": {"index": "tokens/index.csv"},
-        "material": {"text": "material.txt"},
-        "conditions": [{"name": "intact", "kind": "intact"},
-                       {"name": "scrambled", "kind": "scramble", "level": "syllable"},
-                       {"name": "reversed", "kind": "reverse"}],
-        "repeat": {"conditions": ["intact"], "placement": "adjacent"},
-        "trials": {"groups_per_trial": 3, "lead_in": True, "silence_before": 0.1,
-                   "silence_after": 0.1, "per_condition": 2, "lists": 2},
-        "retime": {"backend": "cut-pad", "cache_dir": str(folder / "cache")},
-        "pitch": {"policy": "keep"},
-        "output": {"sample_rate": 16000, "subtype": "PCM_16"},
-        "check": {"run": False},
-        "events": events,
-    }
-    p = folder / "ev.yaml"
-    p.write_text(yaml.safe_dump(data, sort_keys=False))
-    return p
+    return write_small_set(folder, name="ev", seed=11, events=events)
 
 
 @pytest.fixture(scope="module")
