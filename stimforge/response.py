@@ -322,6 +322,14 @@ def analysis_grid(rates: RateTable, *, sfreq: float, n_times: int, window: float
                        levels=list(rates.levels), sr=rates.sr, n_top_groups=int(c),
                        lead_in=rates.lead_in, silence_before=rates.silence_before,
                        silence_after=rates.silence_after, warn=False)
+    if r.top_bin < 2:
+        # every bin is then a multiple of the slowest rate: no bin is left for the noise
+        raise AnalysisError(
+            f"epochs of {_fmt_s(r.window)} s hold only one {top_name} cycle: every frequency "
+            f"bin is then a multiple of the slowest rate and none is left to measure the noise "
+            f"beside the tested rates; cut epochs of at least two cycles "
+            f"({_fmt_s(2 * float(top))} s), e.g. two trials' windows in a row, or analyse "
+            "without the slowest level")
     notes = []
     for a, b, d in r.close_pairs():
         notes.append(f"the rates of {a!r} and {b!r} are only {d} bin(s) apart over "

@@ -317,6 +317,17 @@ def _table_problems(root: Path, grid: RateTable, seen: dict[str, tuple[int, dict
     return problems
 
 
+def _two_top_cycles(grid: RateTable, *, where: str) -> None:
+    """Refuse a window of one top-level cycle: every bin is then a structure bin, none is noise."""
+    if grid.top_bin < 2:
+        top = grid.rows[-1]
+        raise CheckInputError(
+            f"{where}: the analysed window ({grid.window:g} s) holds one {top.name} cycle; every "
+            "frequency bin is then a multiple of the slowest rate and none is left to measure "
+            f"the noise beside the tested rates: use trials of at least two {top.name}s "
+            f"({2 * top.period:g} s analysed; trials.groups_per_trial >= 2)")
+
+
 def load_build(build_dir: str | Path) -> tuple[Design, list[Trial]]:
     """Read a build folder into a design and its distinct trials.
 
@@ -418,6 +429,7 @@ def load_build(build_dir: str | Path) -> tuple[Design, list[Trial]]:
                               "folder is inconsistent: rebuild the set")
     notes = tuple(_hash_notes(root, manifest, seen))
     recipe = manifest.get("recipe") if isinstance(manifest.get("recipe"), dict) else {}
+    _two_top_cycles(grid, where=str(mpath))
     design = Design(grid=grid, mode="build", source=".", kinds=kinds, notes=notes,
                     recipe=recipe)
     return design, trials
@@ -494,6 +506,7 @@ def load_files(paths: Sequence[str | Path], *, unit_duration: float,
                                  unit_name=unit_name)
     except GridError as exc:
         raise CheckInputError(str(exc)) from None
+    _two_top_cycles(grid, where=str(paths[0]))
     design = Design(grid=grid, mode="files", offset=offset,
                     source=", ".join(str(p) for p in paths[:3]) + (" ..." if len(paths) > 3 else ""))
     return design, trials

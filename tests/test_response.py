@@ -71,6 +71,12 @@ def test_epochs_that_are_not_whole_cycles_name_the_nearest_crops(n_times, expect
         R.analysis_grid(_rates(), sfreq=250.0, n_times=n_times)
 
 
+def test_one_cycle_of_the_slowest_rate_leaves_no_noise_bins():
+    # 1 s epochs with a 1 s line: every bin is a multiple of the line rate [calc]
+    with pytest.raises(AnalysisError, match="hold only one line cycle.*at least two cycles \\(2 s\\)"):
+        R.analysis_grid(_rates(), sfreq=250.0, n_times=250)
+
+
 def test_epochs_longer_than_the_build_window_are_refused():
     with pytest.raises(AnalysisError, match="lead-in or silence"):
         R.analysis_grid(_rates(), sfreq=250.0, n_times=2500, max_groups=8)  # 10 s > 8 s

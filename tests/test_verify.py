@@ -541,6 +541,9 @@ def small(tmp_path_factory):
 
 
 BAD = [
+    # 4 x 0.25 s units x 8 = one 8 s pair cycle per file: no noise bins are left [calc]
+    (lambda r, p: [*map(str, p), "--unit-duration", "0.25", "--level", "line=4", "--level",
+                   "pair=8"], r"holds one pair cycle; every frequency bin"),
     (lambda r, p: [str(r / "missing.wav"), str(p[0]), "--unit-duration", "0.25", "--level",
                    "line=4"], r"not found: \S*missing.wav"),
     (lambda r, p: [str(r / "no_such_build")], r"not found: \S*no_such_build"),
