@@ -34,7 +34,7 @@ from .audio_io import write_wav as _write_wav  # (tests replace it to simulate a
 from .export import (LOG, MANIFEST, commit_output, discard_partial, json_dumps,
                      output_digests, prepare_output, sha256_file, write_tsv)
 from .recipe import Recipe, load_recipe
-from .timing import table_seconds
+from .timing import table_samples, table_seconds
 
 __all__ = ["build", "BuildResult", "open_build", "BuildEstimate", "estimate_build", "TRIAL_COLUMNS",
            "UNIT_COLUMNS"]
@@ -454,8 +454,8 @@ class BuildResult:
         x, sr = sf.read(self.out / row["stim_file"], dtype="float64")
         if x.ndim > 1:
             x = x.mean(axis=1)
-        a = int(round(float(row["analysis_onset"]) * sr))
-        n = int(round(float(row["analysis_duration"]) * sr))
+        a = table_samples(row["analysis_onset"], sr=sr)
+        n = table_samples(row["analysis_duration"], sr=sr)
         env_sr = choose_env_sr(rates.rows[0].period)
         make = broadband_envelope if envelope == "broadband" else auditory_envelope
         env = make(x[a:a + n], sr=sr, env_sr=env_sr)

@@ -21,7 +21,7 @@ import math
 from fractions import Fraction
 
 __all__ = ["exact", "round_half_up", "unit_start", "slot_length", "seconds_to_samples",
-           "window_samples", "table_seconds"]
+           "window_samples", "table_seconds", "table_samples"]
 
 
 def exact(value: float | int | str | Fraction) -> Fraction:
@@ -72,3 +72,9 @@ def window_samples(seconds: float, *, sr: float, minimum: int = 0) -> int:
 def table_seconds(n_samples: int, *, sr: int) -> float:
     """A sample count as seconds for the TSV tables: rounded to 1 microsecond."""
     return round(int(n_samples) / sr, 6)
+
+
+def table_samples(seconds: float, *, sr: int) -> int:
+    """A position read from the TSV tables (seconds to 1 us) as a sample index: the float noise
+    of the decimal text is rounded away, then the grid's half-up rule applies."""
+    return seconds_to_samples(round(float(seconds), 9), sr=sr)

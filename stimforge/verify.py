@@ -73,7 +73,7 @@ from .envelopes import (AUDITORY_SR, COMPRESSION, auditory_envelope, broadband_e
                         choose_env_sr, gammatone_bank)
 from .errors import CheckInputError, GridError
 from .grid import RateTable, checked_levels, grid_from_numbers
-from .timing import seconds_to_samples, unit_start
+from .timing import seconds_to_samples, table_samples, unit_start, window_samples
 from .verify_contrast import (BOUNDARIES, aligned_rank_test, boundary_units, breakdown,
                               element_units)
 from .verify_fit import TrialFit, estimate_offset, fit_findings, quick_fit, trial_fit
@@ -223,11 +223,6 @@ def _num(row: dict[str, str], key: str, where: str) -> float:
     if not math.isfinite(v):
         raise CheckInputError(f"{where}: column {key!r} is {row.get(key)!r}; rebuild the set")
     return v
-
-
-def _sample(t: float, sr: int) -> int:
-    # the tables give seconds to 1 us: round away float noise, then the one rounding rule
-    return seconds_to_samples(round(t, 9), sr=sr)
 
 
 def _hash_notes(root: Path, manifest: dict, files: Iterable[str]) -> list[str]:
@@ -402,16 +397,16 @@ def load_build(build_dir: str | Path) -> tuple[Design, list[Trial]]:
         labels = tokens = None
         if f in unit_rows:
             ons = sorted(unit_rows[f], key=lambda t: t[1])
-            starts = [_sample(_num(r2, "onset", str(units_path)), sr) for _, _, r2 in ons]
+            starts = [table_samples(_num(r2, "onset", str(units_path)), sr=sr) for _, _, r2 in ons]
             if len(starts) != nu:
                 raise CheckInputError(f"{units_path}: {len(starts)} analysed {unit_name} rows "
                                       f"for {f}, expected {nu}; the build folder is inconsistent")
             labels = tuple(str(r2.get("label", "")) for _, _, r2 in ons)
             tokens = tuple(str(r2.get("token", "")) for _, _, r2 in ons)
         else:
-            s0 = _sample(onset, sr)
+            s0 = table_samples(onset, sr=sr)
             starts = [s0 + unit_start(k, unit_duration=T, sr=sr) for k in range(nu)]
-        end = _sample(onset, sr) + unit_start(nu, unit_duration=T, sr=sr)
+        end = table_samples(onset, sr=sr) + unit_start(nu, unit_duration=T, sr=sr)
         bounds = np.array(starts + [end], dtype=np.int64)
         if bounds[-1] > n_frames or bounds[0] < 0 or np.any(np.diff(bounds) <= 0):
             raise CheckInputError(f"{root / f}: {n_frames / sr:.3f} s long; the grid needs "
@@ -476,7 +471,7 @@ def load_files(paths: Sequence[str | Path], *, unit_duration: float,
         head = f"{len(problems)} of {len(paths)} file(s) cannot be checked:\n  " if len(problems) > 1 else ""
         raise CheckInputError(head + "\n  ".join(problems))
     assert sr0 is not None
-    off = _sample(offset, sr0)
+    off = table_samples(offset, sr=sr0)
     shortest = int(np.argmin(lens))
     top_samples = top_units * T * sr0
     n_top = int(math.floor((lens[shortest] - off) / top_samples + 1e-9)) if lens[shortest] > off else 0
@@ -587,7 +582,7 @@ def unit_features(U: np.ndarray, *, sr: int) -> tuple[np.ndarray, np.ndarray]:
     with np.errstate(divide="ignore"):
         feats[:, 0] = 10.0 * np.log10(np.mean(U * U, axis=1))
     A = np.abs(U)
-    e5 = moving_average(A, max(1, int(round(0.005 * sr))))
+    e5 = moving_average(A, window_samples(0.005, sr=sr, minimum=1))
     pk = e5.max(axis=1)
     thr = pk * 10.0 ** (ACTIVE_THRESHOLD_DB / 20.0)
     m = (e5 >= thr[:, None]) & (pk[:, None] > 0)
@@ -597,7 +592,7 @@ def unit_features(U: np.ndarray, *, sr: int) -> tuple[np.ndarray, np.ndarray]:
     active[has, 0] = first[has] / sr
     active[has, 1] = last[has] / sr
     feats[:, 1] = np.where(has, (last - first) / sr * 1000.0, 0.0)
-    n20 = max(1, int(round(0.020 * sr)))
+    n20 = window_samples(0.020, sr=sr, minimum=1)
     e20 = moving_average(moving_average(A, n20), n20)
     rise = (np.argmax(np.diff(e20, axis=1), axis=1) + 0.5) / sr * 1000.0
     ok = has & (e20.max(axis=1) > 0) & (L >= 3)
@@ -648,11 +643,11 @@ def measure_trial(tr: Trial, *, design: Design, env_sr: float) -> Measured:
             v = v[np.isfinite(v)]
             if v.size >= 3:
                 feats[k, 2] = float(semitones(float(np.median(v)), F0_REF))
-    ms = max(1, int(round(0.001 * sr)))
+    ms = window_samples(0.001, sr=sr, minimum=1)
     C = np.concatenate([np.zeros((n, 1)), np.cumsum(U * U, axis=1)], axis=1)
     energy_ms = C[:, np.minimum(np.arange(0, n_feat + ms, ms), n_feat)]
     d = np.abs(np.diff(x, prepend=x[0]))
-    hw = max(1, int(round(JOIN_HALF_WIDTH * sr)))
+    hw = window_samples(JOIN_HALF_WIDTH, sr=sr, minimum=1)
     interior_peaks = np.full(n, np.nan)
     boundary_peaks = np.full(n, np.nan)
     for k in range(n):

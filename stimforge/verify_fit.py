@@ -39,6 +39,7 @@ import numpy as np
 
 from .defaults import ONSET_THRESHOLD_DB
 from .errors import CheckInputError
+from .timing import table_samples, window_samples
 
 __all__ = ["TrialFit", "trial_fit", "fit_findings", "quick_fit", "estimate_offset", "onset_offset",
            "BOUNDARY_MAX_DB", "BOUNDARY_EXCESS_DB", "QUIET_TRIAL_DB"]
@@ -86,7 +87,7 @@ def onset_offset(x: np.ndarray, *, sr: int,
     whole signal's peak.  The onset is the first sound bin's start, the offset the last one's end.
     """
     a = np.abs(np.asarray(x, dtype=np.float64))
-    ms = max(1, int(round(0.001 * sr)))
+    ms = window_samples(0.001, sr=sr, minimum=1)
     n = a.size // ms
     if n == 0:
         return None
@@ -115,7 +116,7 @@ def trial_fit(x: np.ndarray, units: np.ndarray, *, sr: int, window: tuple[float,
     sr : int, Hz
     window : (float, float), seconds in the file
     """
-    ms = max(1, int(round(0.001 * sr)))
+    ms = window_samples(0.001, sr=sr, minimum=1)
     nb = units.shape[1] // ms
     prof = np.abs(units[:, : nb * ms]).reshape(units.shape[0], nb, ms).mean(axis=(0, 2))
     mean = float(prof.mean()) if prof.size else 0.0
@@ -125,7 +126,7 @@ def trial_fit(x: np.ndarray, units: np.ndarray, *, sr: int, window: tuple[float,
                     mode="valid")[: nb]  # c[t]: mean over bins t-h .. t+h-1 (circular)
     q = int(np.argmin(c)) if c.size else 0
     oo = onset_offset(x, sr=sr)
-    seg = x[int(round(window[0] * sr)):int(round(window[1] * sr))]
+    seg = x[table_samples(window[0], sr=sr):table_samples(window[1], sr=sr)]
     rms = float(np.sqrt(np.mean(seg * seg))) if seg.size else 0.0
     return TrialFit(name=name, condition=condition, duration=x.size / sr, window=window,
                     onset=None if oo is None else oo[0], offset=None if oo is None else oo[1],
