@@ -49,7 +49,8 @@ from typing import Any
 
 import numpy as np
 
-from .errors import EpochError, StimforgeError
+from .assemble import trial_layout
+from .errors import EpochError, EpochMismatch, StimforgeError
 from .timing import exact, round_half_up
 
 __all__ = [
@@ -156,15 +157,11 @@ class Plan:
                 f"window {float(self.window):g} s, from {self.source}>")
 
 
-def _analysis_onset_exact(row: dict[str, Any], rates: Any, where: str) -> Fraction:
-    """Exact analysis onset (s) from the rate table, checked against the rounded TSV value."""
-    from .timing import seconds_to_samples, unit_start
-
-    sr = int(rates.sr)
+def _analysis_onset_exact(row: dict[str, Any], starts: Any, sr: int, where: str) -> Fraction:
+    """Exact analysis onset (s) on the build's grid (``assemble.trial_layout``'s unit starts),
+    checked against the rounded TSV value."""
     lead = int(row.get("lead_in_units") or 0)
-    samples = seconds_to_samples(rates.silence_before, sr=sr) + unit_start(
-        lead, unit_duration=float(rates.rows[0].period_exact), sr=sr)
-    t = Fraction(samples, sr)
+    t = Fraction(int(starts[lead]), int(sr))
     stored = row.get("analysis_onset")
     if stored is not None and abs(float(stored) - float(t)) > 2e-6:
         raise EpochError(f"{where}: analysis_onset {stored} s of {row.get('stim_file')} does not "
@@ -201,6 +198,7 @@ def read_plan(build: str | Path, *, list_number: int) -> Plan:
         raise EpochError(f"--build: {exc}") from exc
     root = Path(bt.root)
     rates = bt.rates
+    _, starts, _ = trial_layout(rates)  # the build's own unit starts (samples in the file)
     lists = sorted({int(r["list"]) for r in bt.trials})
     if int(list_number) not in lists:
         raise EpochError(f"--list {list_number}: {root} has lists {', '.join(map(str, lists))}")
@@ -238,7 +236,7 @@ def read_plan(build: str | Path, *, list_number: int) -> Plan:
             order=int(r["order"]), stim_file=str(r["stim_file"]), condition=str(r["condition"]),
             kind=str(r.get("kind") or ""), trial=int(r["trial"]), repetition=int(r["repetition"]),
             value=int(e["value"]), onset=float(e["onset"]), duration=float(r["duration"]),
-            analysis_onset=_analysis_onset_exact(r, rates, str(root / "trials.tsv"))))
+            analysis_onset=_analysis_onset_exact(r, starts, rates.sr, str(root / "trials.tsv"))))
     window = rates.rows[0].period_exact * rates.analysed_units
     evs = tuple(sorted(({"onset": float(e["onset"]), "value": int(e["value"]),
                          "trial_type": str(e["trial_type"]),
@@ -1046,7 +1044,7 @@ def epoch_recording(
                 f"{', '.join(f'{n} {k}' for k, n in sorted(counts.items()))}):")
         if not drop_mismatched:
             hint = _better_list(rec, plan, tolerance=tolerance)
-            raise EpochError(head + "\n" + listing + "\n" + hint + "Nothing was cut. Check the "
+            raise EpochMismatch(head + "\n" + listing + "\n" + hint + "Nothing was cut. Check the "
                              "list number, "
                              "the presentation log and the trigger cable; --drop-mismatched "
                              "cuts only the trials no disagreement touches.")

@@ -54,3 +54,7 @@ class AnalysisError(StimforgeError, ValueError):
 
 class EpochError(StimforgeError, ValueError):
     """A recording cannot be cut into epochs: codes that do not match the plan, a bad window..."""
+
+
+class EpochMismatch(EpochError):
+    """The codes found in a recording disagree with the list's plan (every disagreement listed)."""

@@ -62,7 +62,7 @@ def run(args) -> int:
     import sys
 
     from ..epochs import epoch_recording, output_paths
-    from ..errors import EpochError
+    from ..errors import EpochError, EpochMismatch
 
     out = args.out or _default_out(args.recording, args.list_number)
     fif, npz = output_paths(out)
@@ -76,12 +76,9 @@ def run(args) -> int:
             events_from=args.events_from, stim_channel=args.stim_channel, delay_ms=args.delay,
             tolerance=args.tolerance, ignore_codes=args.ignore_code,
             participant=args.participant, drop_mismatched=args.drop_mismatched)
-    except EpochError as exc:
-        text = str(exc)
-        if "do not match list" in text:
-            print(f"refused: {text}", file=sys.stderr)
-            return 1
-        raise
+    except EpochMismatch as exc:
+        print(f"refused: {exc}", file=sys.stderr)
+        return 1
     fif, npz = res.save(out, overwrite=args.overwrite)
     md = res.metadata
     print(f"{args.recording}: {len(res.recorded.values)} codes from {res.recorded.source}; "
