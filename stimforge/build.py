@@ -27,6 +27,7 @@ import soundfile as sf
 from ._version import __version__
 from .acoustics import peak_dbfs
 from .assemble import assemble_trial, trial_layout, unit_rows
+from .defaults import MAX_JOBS
 from .errors import BuildError, RecipeError
 from .events import (EVENT_COLUMNS, PLAYLIST_COLUMNS, CodeTable, assign_values, code_table,
                      jitter_rng, marker_channel, plan_list, playlist_rows)
@@ -102,7 +103,6 @@ _WRITE_ERRNOS = {
     errno.EIO: "the disk reported an input/output error: check it, or choose another --out",
 }
 
-MAX_JOBS = 256  # as retime.jobs
 
 
 def checked_seed(seed: Any) -> int:

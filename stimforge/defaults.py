@@ -14,3 +14,5 @@ TRIM_THRESHOLD_DB = -40.0
 REFERENCE_LEVEL_STEP_DB = 1.0
 REFERENCE_GAP_MS = 20.0
 REFERENCE_PITCH_STEP_ST = 1.0
+#: Most worker processes a build or a check may start (recipe retime.jobs, --jobs).
+MAX_JOBS = 256

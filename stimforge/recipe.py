@@ -30,7 +30,7 @@ from pydantic import (
     model_validator,
 )
 
-from .defaults import (ALPHA, ONSET_THRESHOLD_DB, REFERENCE_GAP_MS,
+from .defaults import (ALPHA, MAX_JOBS, ONSET_THRESHOLD_DB, REFERENCE_GAP_MS,
                        REFERENCE_LEVEL_STEP_DB, REFERENCE_PITCH_STEP_ST, TRIM_THRESHOLD_DB)
 from .errors import RecipeError
 from .grid import MAX_LEVELS, LevelRate, RateTable, RateWarning, rate_table
@@ -321,7 +321,7 @@ class RetimeSpec(_Model):
         description="For 'onset': the acoustic onset is where the envelope first comes within "
         "this many dB of the token's peak.",
     )
-    jobs: int = Field(1, ge=1, le=256, description="Worker processes.")
+    jobs: int = Field(1, ge=1, le=MAX_JOBS, description="Worker processes.")
     cache: bool = True
     cache_dir: RecipePath | None = Field(None, description="Default: the user cache folder.")
 
@@ -753,14 +753,6 @@ def _read_yaml(text: str) -> tuple[Any, dict[tuple, int]]:
     finally:
         loader.dispose()
     return data, _node_lines(node)
-
-
-def _line_map(text: str) -> dict[tuple, int]:
-    """Map YAML paths (tuples of keys / indices) to 1-based line numbers ({} if unreadable)."""
-    try:
-        return _read_yaml(text)[1]
-    except (yaml.YAMLError, RecursionError, MemoryError):
-        return {}
 
 
 def _model_at(loc: tuple) -> type[BaseModel] | None:

@@ -67,7 +67,7 @@ import numpy as np
 from . import stats as vs
 from .acoustics import FEATURES, praat_f0, semitones
 from .audio_io import AudioFileProblem, probe_audio, read_audio, read_tsv, sha256_file
-from .defaults import (ALPHA, REFERENCE_GAP_MS, REFERENCE_LEVEL_STEP_DB,
+from .defaults import (ALPHA, MAX_JOBS, REFERENCE_GAP_MS, REFERENCE_LEVEL_STEP_DB,
                        REFERENCE_PITCH_STEP_ST)
 from .envelopes import (AUDITORY_SR, COMPRESSION, auditory_envelope, broadband_envelope,
                         choose_env_sr, gammatone_bank)
@@ -98,7 +98,6 @@ JOIN_FLOOR_DB = -20.0
 F0_REF = 100.0  # Hz, reference of the semitone scale
 F0_SR = 8000  # Hz, rate at which Praat measures F0
 ACTIVE_THRESHOLD_DB = -30.0  # active part of a unit: within 30 dB of its smoothed peak
-MAX_JOBS = 256
 #: Reference cue sizes (planted-cue kinds -> size in their unit): the check vouches for a set
 #: only if it would have revealed each of them at every level.
 REFERENCE_CUES = {"level_step": REFERENCE_LEVEL_STEP_DB, "gap": REFERENCE_GAP_MS,
@@ -1350,10 +1349,7 @@ def _run(design: Design, trials: list[Trial], *, alpha: float, sensitivity_on: b
                 f"(ratio to neighbours {best['ratio']:.2f}, ITPC {best['itpc']:.2f}); the grid does "
                 "not match the audio: check the unit duration, the offset and the files")
     fam = _Family(data, alpha=alpha)
-    adj = vs.holm(fam.p)
-    for r, a in zip(fam.rows, adj):
-        r["p_holm"] = float(a) if np.isfinite(a) else 1.0
-        r["significant"] = bool(np.isfinite(a) and a < alpha)
+    apply_holm(fam.rows, alpha)
     _attach_breakdowns(fam.rows, data)
     spec = [r for r in fam.rows if r["measure"] in MEASURES]
     frows = [r for r in fam.rows if r["measure"] == "feature"]
@@ -1429,12 +1425,11 @@ def _join_summary(data: SetData) -> dict:
             "median_db": float(np.median([t[0] for t in allj])) if allj else None}
 
 
-def _manifest_reference(build_dir: Path) -> dict[str, float]:
+def _manifest_reference(recipe: Mapping) -> dict[str, float]:
     """Reference cue sizes from the build's recipe (manifest.json -> recipe.check.reference)."""
     try:
-        rec = json.loads((build_dir / "manifest.json").read_text(encoding="utf-8"))["recipe"]
-        r = (rec.get("check") or {}).get("reference") or {}
-    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        r = (recipe.get("check") or {}).get("reference") or {}
+    except AttributeError:
         return {}
     keys = {"level_step_db": "level_step", "gap_ms": "gap", "pitch_step_st": "pitch_step"}
     return {keys[k]: float(v) for k, v in r.items() if k in keys and v is not None}
@@ -1476,7 +1471,7 @@ def check_build(build_dir: str | Path, *, alpha: float = ALPHA, sensitivity: boo
         grid that does not fit the audio.
     """
     design, trials = load_build(build_dir)
-    ref = {**_manifest_reference(Path(build_dir)), **dict(reference or {})}
+    ref = {**_manifest_reference(design.recipe), **dict(reference or {})}
     return _run(design, trials, alpha=alpha, sensitivity_on=sensitivity, progress=progress,
                 jobs=jobs, reference=ref)
 
@@ -1555,6 +1550,11 @@ def check(source: str | Path | Sequence[str | Path], *, unit_duration: float | N
         if unit_duration is not None or levels is not None:
             raise CheckInputError(f"{source}: a build folder carries its own grid; do not pass "
                                   "unit_duration or levels with it")
+        from .export import unfinished_reason
+
+        why = unfinished_reason(source)  # (the build checks its own unfinished folder directly)
+        if why:
+            raise CheckInputError(why)
         return check_build(source, alpha=alpha, sensitivity=sensitivity, progress=progress,
                            jobs=jobs, reference=reference)
     paths = [source] if isinstance(source, (str, Path)) else list(source)

@@ -75,7 +75,7 @@ from .acoustics import FEATURES
 from .audio_io import json_dumps, to_jsonable
 from .errors import CheckInputError
 
-__all__ = ["CheckReport", "SCHEMA_VERSION", "CAUTION", "VERDICT", "VERDICT_MEANING", "new_figure",
+__all__ = ["CheckReport", "SCHEMA_VERSION", "CAUTION", "new_figure",
            "figure_png", "figure_img", "plain", "PAGE_CSS", "SORT_SCRIPT"]
 
 SCHEMA_VERSION = 2
@@ -104,9 +104,6 @@ FEATURE_AXIS = {
 }
 MEASURE_WORDS = {"evoked": "evoked amplitude", "itpc": "ITPC", "t2circ": "T2circ"}
 CUE_WORDS = {"level_step": "loudness step", "gap": "silent gap", "pitch_step": "pitch step"}
-#: The verdict, worded one way everywhere: a label and what it means.
-VERDICT = {True: "PASS", False: "CUE FOUND"}
-VERDICT_MEANING = {True: "no acoustic cue found", False: "acoustic cue found"}
 #: The three states of the verdict: (label, meaning); exit 0 / 1 / 3.
 VERDICT_STATES = {"pass": ("PASS", "no acoustic cue found"),
                   "cue": ("CUE FOUND", "acoustic cue found"),

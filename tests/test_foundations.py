@@ -93,6 +93,12 @@ def test_shared_defaults_have_one_source():
     assert args.alpha == defaults.ALPHA
     assert RetimeSpec().onset_threshold_db == defaults.ONSET_THRESHOLD_DB
     assert TrimSpec().threshold_db == defaults.TRIM_THRESHOLD_DB
+    import importlib
+
+    limits = [m.le for m in RetimeSpec.model_fields["jobs"].metadata if hasattr(m, "le")]
+    assert limits == [defaults.MAX_JOBS]
+    for module in ("stimforge.build", "stimforge.verify"):
+        assert importlib.import_module(module).MAX_JOBS == defaults.MAX_JOBS
     ref = CheckSpec().reference
     assert verify.REFERENCE_CUES == {"level_step": ref.level_step_db, "gap": ref.gap_ms,
                                      "pitch_step": ref.pitch_step_st}

@@ -71,9 +71,7 @@ def report(result) -> int:
     verdict = f"{result.check.verdict} ({result.check.verdict_meaning})"
     print(f"acoustic check: {verdict}; report {result.out / 'check' / 'check.html'} "
           f"(processing report beside it); all tests: stimforge check {result.out} --table")
-    if not result.check.passed:
-        return 1
-    return int(getattr(result.check, "exit_code", 0))
+    return result.check.exit_code
 
 
 def run(args) -> int:

@@ -100,7 +100,7 @@ def add_parser(sub) -> None:
 
 def run(args) -> int:
     from ..errors import CheckInputError
-    from ..verify import check_build, check_files
+    from ..verify import check, check_files
     from ..verify_report import CAUTION
 
     inputs = list(args.inputs)
@@ -129,16 +129,11 @@ def run(args) -> int:
     common = dict(alpha=args.alpha, sensitivity=not args.no_sensitivity,
                   progress=not args.quiet, jobs=args.jobs, reference=reference or None)
     if len(inputs) == 1 and inputs[0].is_dir():
-        from ..export import unfinished_reason
-
-        why = unfinished_reason(inputs[0])
-        if why:
-            raise CheckInputError(why)
         if args.unit_duration is not None or args.level or args.offset != 0.0:
             raise CheckInputError(f"{inputs[0]}: a build folder carries its own grid; drop "
                                   "--unit-duration/--level/--offset (they are for plain WAV "
                                   "files)")
-        report = check_build(inputs[0], **common)
+        report = check(inputs[0], **common)
     else:
         dirs = [p for p in inputs if p.is_dir()]
         if dirs:
