@@ -1012,17 +1012,30 @@ def level_units(plan: TrialPlan, *, rates: RateTable) -> list[LevelUnit]:
 
 
 # =========================================================================== make_design
+def read_material_text(path: str | Path) -> str:
+    """The text of a material file, as the build reads it (UTF-8, a byte-order mark tolerated).
+
+    Raises
+    ------
+    DesignError
+        File missing or unreadable, naming ``material.text`` and the path.
+    """
+    path = Path(path)
+    try:
+        return path.read_text(encoding="utf-8-sig")  # tolerate a BOM
+    except FileNotFoundError:
+        raise DesignError(f"material.text: material file not found: {path}; check material.text "
+                          "(relative to the recipe's folder)") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise DesignError(f"material.text: cannot read {path}: {exc}; save it as UTF-8 "
+                          "text") from None
+
+
 def _load_material(recipe: Recipe, n_needed: int, rng: np.random.Generator) -> _Material:
     spec = recipe.material
     if spec.text is not None:
         path = Path(spec.text)
-        try:
-            text = path.read_text(encoding="utf-8-sig")  # tolerate a BOM
-        except FileNotFoundError:
-            raise DesignError(f"material.text: file not found: {path}") from None
-        except (OSError, UnicodeDecodeError) as exc:
-            raise DesignError(f"material.text: cannot read {path}: {exc}") from None
-        return _parse(text, hierarchy=recipe.hierarchy, source=str(path))
+        return _parse(read_material_text(path), hierarchy=recipe.hierarchy, source=str(path))
     groups = generate_material(
         spec.generate, hierarchy=recipe.hierarchy, n_top_groups=n_needed, rng=rng
     )

@@ -292,7 +292,7 @@ def preflight(recipe: Any, *, out: str | Path | None = None, overwrite: bool = F
 
 def _material(recipe: Any, found: list[Finding]) -> list[tuple[str, ...]] | None:
     """Parse the material text (or note the generated material); None on a problem."""
-    from .design import parse_material
+    from .design import parse_material, read_material_text
 
     mat = recipe.material
     top = recipe.hierarchy.names[-1]
@@ -305,17 +305,8 @@ def _material(recipe: Any, found: list[Finding]) -> list[tuple[str, ...]] | None
             (u,) for u in gen.units or ()]
     path = Path(mat.text)
     try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        found.append(Finding("material", "problem", f"{path}: material file not found; check "
-                             "material.text (relative to the recipe's folder)"))
-        return None
-    except (OSError, UnicodeDecodeError) as exc:
-        found.append(Finding("material", "problem", f"{path}: cannot read the material "
-                             f"({exc}); save it as UTF-8 text"))
-        return None
-    try:
-        groups = parse_material(text, hierarchy=recipe.hierarchy, source=str(path))
+        groups = parse_material(read_material_text(path), hierarchy=recipe.hierarchy,
+                                source=str(path))
     except StimforgeError as exc:
         found.append(Finding("material", "problem", _first_line(exc)))
         return None

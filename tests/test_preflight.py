@@ -150,3 +150,13 @@ def test_a_dry_run_agrees_with_the_build_on_stretch(demo, tmp_path):
     assert preflight(demo, out=tmp_path / "a").finding("stretch").status == "problem"
     with pytest.raises(RetimeError, match="ka_1.wav"):
         build(demo, out=tmp_path / "b", progress=False, check=False)
+
+
+def test_a_material_file_with_a_byte_order_mark_passes_as_the_build_reads_it(demo, capsys):
+    # editors on some systems start UTF-8 files with U+FEFF; the build's reader tolerates it,
+    # and the dry run reads the file with the same function (design.read_material_text)
+    verses = demo.parent.parent / "demo_corpus" / "verses.txt"
+    verses.write_bytes(b"\xef\xbb\xbf" + verses.read_bytes())  # the UTF-8 byte order mark, EF BB BF (from memory)
+    rc, out, _ = _dry_run(demo, capsys)
+    assert rc == 0, out
+    assert "ok       material" in out and "ok       labels" in out
