@@ -342,17 +342,18 @@ def plan_power(rates: RateTable, *, level: str | None = None, harmonic: int = 1,
         Z = amp * np.exp(1j * phi) + noise / math.sqrt(2.0)
         for i, T in enumerate(T_grid):
             z = Z[..., :T]
-            r = np.asarray(stats.rayleigh(z, axis=-1).r)
+            ray = stats.rayleigh(z, axis=-1)
+            r = np.asarray(ray.r)
             if test == "t2circ":
                 pp = np.asarray(stats.t2circ(z, axis=-1).p)
             elif test == "itpc":
-                pp = np.asarray(stats.rayleigh(z, axis=-1).p)
-            else:
+                pp = np.asarray(ray.p)
+            else:  # the evoked test analyze runs: the mean at bin 0, 2 n_side noise bins beside
                 nb = 2 * n_side
                 en = (rng.standard_normal((b, Pmax, nb)) + 1j * rng.standard_normal(
                     (b, Pmax, nb))) / math.sqrt(2.0 * T)
-                F = np.abs(z.mean(axis=-1)) ** 2 / np.mean(np.abs(en) ** 2, axis=-1)
-                pp = sst.f.sf(F, 2, 2 * nb)
+                spec = np.concatenate([z.mean(axis=-1)[..., None], en], axis=-1)
+                pp = np.asarray(stats.evoked_test(spec, k=0, neighbours=np.arange(1, nb + 1)).p)
             hits_p[i] += np.count_nonzero(pp <= a) / Pmax
             x = r - stats.itpc_null_mean(T)
             for j, P in enumerate(P_grid):

@@ -10,7 +10,6 @@ sample.  Responses found with the shared statistics (stimforge/stats.py).
 
 from __future__ import annotations
 
-import argparse
 import json
 import re
 from fractions import Fraction
@@ -311,23 +310,10 @@ def test_bad_inputs_are_named(built, tmp_path, rng):
 
 # --------------------------------------------------------------------------- the CLI
 def _cli(argv: list[str]) -> int:
-    """`stimforge ...` through cli.main once the commands are registered, else directly."""
+    """`stimforge ...` as a user runs it."""
     from stimforge import cli
 
-    if "epoch" in cli.COMMANDS and "simulate" in cli.COMMANDS:
-        return cli.main(argv)
-    from stimforge.commands import epoch, simulate
-
-    parser = argparse.ArgumentParser(prog="stimforge")
-    sub = parser.add_subparsers()
-    epoch.add_parser(sub)
-    simulate.add_parser(sub)
-    args = parser.parse_args(argv)
-    try:
-        return int(args.run(args))
-    except StimforgeError as exc:
-        print(f"error: {exc}")
-        return 2
+    return cli.main(argv)
 
 
 def test_cli_simulate_epoch_and_refusal(built, tmp_path, capsys):

@@ -130,8 +130,6 @@ def test_plan_errors_name_the_option(kwargs, match):
 def test_plan_command(tmp_path, capsys):
     from stimforge import cli
 
-    if "plan" not in cli.COMMANDS:  # until the lead registers the command
-        cli.COMMANDS.append("plan")
     out, fig = tmp_path / "plan.json", tmp_path / "curves.png"
     rc = cli.main(["plan", "--unit-duration", "0.25", "--level", "word=2", "--level", "line=2",
                    "--window", "8", "--itpc", "0.3", "--trials", "20,40", "--participants",
