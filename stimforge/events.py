@@ -47,7 +47,7 @@ from typing import Any
 import numpy as np
 
 from .errors import RecipeError
-from .timing import exact, round_half_up
+from .timing import exact, round_half_up, seconds_to_samples
 
 __all__ = [
     "EVENT_COLUMNS",
@@ -458,7 +458,7 @@ def marker_channel(n_samples: int, *, sr: int, onsets: Sequence[int], pulse: flo
     if not (0 < amplitude <= 1) or pulse <= 0:
         raise RecipeError(f"events: marker_amplitude must be in (0, 1] and marker_pulse > 0, "
                           f"got {amplitude}, {pulse}")
-    n = max(1, round_half_up(exact(pulse) * int(sr)))
+    n = max(1, seconds_to_samples(pulse, sr=int(sr)))
     y = np.zeros(int(n_samples))
     for o in onsets:
         if not 0 <= int(o) < n_samples:

@@ -33,6 +33,7 @@ from pydantic import (
 from .defaults import (ALPHA, MAX_JOBS, ONSET_THRESHOLD_DB, REFERENCE_GAP_MS,
                        REFERENCE_LEVEL_STEP_DB, REFERENCE_PITCH_STEP_ST, TRIM_THRESHOLD_DB)
 from .errors import RecipeError
+from .events import EventSettings
 from .grid import MAX_LEVELS, LevelRate, RateTable, RateWarning, rate_table
 from .timing import exact
 
@@ -425,11 +426,15 @@ class CheckSpec(_Model):
         "(also `stimforge check --ref-level-step/--ref-gap/--ref-pitch-step`).")
 
 
+_EV = EventSettings()  # the defaults of the events section, kept in one place
+
+
 class EventsSpec(_Model):
-    """Trigger codes and the planned presentation (see stimforge/events.py)."""
+    """Trigger codes and the planned presentation (see stimforge/events.py, whose
+    :class:`~stimforge.events.EventSettings` holds the defaults)."""
 
     codes: Literal["condition", "trial"] = Field(
-        "condition",
+        _EV.codes,
         description="'condition': one code per condition and hearing, 10 x condition number + "
         "hearing (11, 12, 21, ...) when that fits below the reserved codes, else numbered "
         "1, 2, ...; 'trial': one code per distinct presentation, numbered 1, 2, ...",
@@ -438,24 +443,24 @@ class EventsSpec(_Model):
         None, description="Explicit codes per condition: one per hearing, or one for all "
         "hearings, e.g. {intact: [11, 12], reversed: 40}; overrides 'codes'.",
     )
-    list_start: int | None = Field(250, ge=1, le=255, description="Code sent when a list starts "
+    list_start: int | None = Field(_EV.list_start, ge=1, le=255, description="Code sent when a list starts "
                                    "(null: none).")
-    list_end: int | None = Field(251, ge=1, le=255, description="Code sent after a list's last "
+    list_end: int | None = Field(_EV.list_end, ge=1, le=255, description="Code sent after a list's last "
                                  "trial (null: none).")
-    catch: int | None = Field(252, ge=1, le=255, description="Code of catch trials (null: none).")
+    catch: int | None = Field(_EV.catch, ge=1, le=255, description="Code of catch trials (null: none).")
     catch_conditions: list[str] = Field(
         [], description="Conditions whose presentations are catch trials (carry the catch code).")
-    iti: float = Field(2.0, ge=0, le=600, description="Seconds of silence between the end of "
+    iti: float = Field(_EV.iti, ge=0, le=600, description="Seconds of silence between the end of "
                        "one trial file and the start of the next.")
-    jitter: float = Field(0.0, ge=0, le=60, description="Width in seconds of a uniform random "
+    jitter: float = Field(_EV.jitter, ge=0, le=60, description="Width in seconds of a uniform random "
                           "addition to every pause (seeded by the recipe's seed and the list).")
     marker_channel: bool = Field(
-        False, description="Also write stereo copies of the trials (stimuli-marker/) whose "
+        _EV.marker_channel, description="Also write stereo copies of the trials (stimuli-marker/) whose "
         "second channel has a pulse at the trial onset and at the analysis onset, for "
         "audio-to-trigger converters.",
     )
-    marker_pulse: float = Field(0.005, gt=0, le=0.1, description="Length of a marker pulse, s.")
-    marker_amplitude: float = Field(0.5, gt=0, le=1, description="Marker pulse amplitude (full "
+    marker_pulse: float = Field(_EV.marker_pulse, gt=0, le=0.1, description="Length of a marker pulse, s.")
+    marker_amplitude: float = Field(_EV.marker_amplitude, gt=0, le=1, description="Marker pulse amplitude (full "
                                 "scale 1).")
 
 

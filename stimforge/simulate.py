@@ -37,6 +37,7 @@ import numpy as np
 
 from .epochs import Plan, _mne, read_plan
 from .errors import EpochError
+from .timing import window_samples
 
 __all__ = [
     "RECORDING_FORMATS",
@@ -220,7 +221,7 @@ def simulate_session(
     stim = data[-1]
     t_axis = np.arange(n) / sfreq
     ch_index = {c: i for i, c in enumerate(channels)}
-    n_pulse = max(1, int(round(pulse * sfreq)))
+    n_pulse = window_samples(pulse, sr=sfreq, minimum=1)
     trig: dict[int, int] = {}
     audio: dict[int, float] = {}
     onsets, descr = [], []

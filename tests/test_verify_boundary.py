@@ -13,7 +13,6 @@ import math
 
 import numpy as np
 import pytest
-from scipy import stats as st
 
 from stimforge import acoustics as A
 from stimforge import verify as V
