@@ -126,6 +126,8 @@ def test_simulated_session_round_trip(built, tmp_path, rng, sfreq, suffix):
     # planted rates found where planted, not elsewhere
     p = evoked_p(res.epochs, plan)
     for r in plan.rates.rows:
+        # spec bounds (calc): the planted responses (default_responses) give p far below
+        # 1e-4 over these trials; a quiet channel's p is uniform, below 1e-3 in 0.1 % of tests
         assert all(p[(c, r.rate)] < 1e-4 for c in PLANTED), (r.rate, p)
         assert all(p[(c, r.rate)] > 1e-3 for c in QUIET), (r.rate, p)
 
@@ -143,6 +145,8 @@ def test_epoch_files_round_trip(built, tmp_path, rng):
         .equals(res.metadata[["condition", "repetition", "item", "stim_file", "order", "value"]])
     np.testing.assert_allclose(back.get_data(), res.epochs.get_data(), rtol=1e-6, atol=1e-12)
     z = np.load(npz)  # no pickles needed
+    # calc: 8 presentations a list x 6 channels x 3 s at 500 Hz; the window is 3 lines x
+    # 4 syllables x 0.25 s (tests/small_sets.py)
     assert z["data"].shape == (8, 6, 1500) and float(z["sfreq"]) == 500.0
     assert float(z["window"]) == 3.0 and str(z["participant"]) == "P07"
     assert z["ch_names"].tolist() == ["Fz", "Cz", "Pz", "Oz", "T7", "T8"]
@@ -247,6 +251,8 @@ def test_window_not_whole_samples_is_cut_exactly_and_said(built32, rng):
     # the exact-frequency DFT (3932 != 3932.16 samples) still finds every planted rate
     p = evoked_p(res.epochs, plan)
     for r in plan.rates.rows:  # 3.125, 1.5625, 0.78125 Hz
+        # spec bounds (calc): the planted responses (default_responses) give p far below
+        # 1e-4 over these trials; a quiet channel's p is uniform, below 1e-3 in 0.1 % of tests
         assert all(p[(c, r.rate)] < 1e-4 for c in PLANTED), (r.rate, p)
         assert all(p[(c, r.rate)] > 1e-3 for c in QUIET), (r.rate, p)
 
@@ -304,6 +310,7 @@ def test_bad_inputs_are_named(built, tmp_path, rng):
     raw.set_annotations(raw.annotations + mne.Annotations([1.0, 2.0], [0.5, 0],
                                                           ["BAD_ACQ_SKIP", "Comment/hello"]))
     rec = find_codes(raw, source="annotations")
+    # calc: 8 trial codes + list start + list end; the two non-code annotations set aside
     assert rec.ignored == {"BAD_ACQ_SKIP": 1, "Comment/hello": 1} and len(rec.values) == 10
     assert isinstance(EpochError("x"), (StimforgeError, ValueError))
 
@@ -346,7 +353,7 @@ def test_demo_build_to_epochs_in_three_formats(tmp_path, capsys):
                 check=False).out
     assert json.loads((out / "manifest.json").read_text())["events"]["scheme"] == "condition"
     plan = read_plan(out, list_number=1)
-    assert len(plan.trials) == 40
+    assert len(plan.trials) == 40  # calc: the demo's 32 trials + 8 intact repeats per list
     for suffix in ("_raw.fif", ".vhdr", ".edf"):
         rec = tmp_path / f"sub-01{suffix}"
         assert _cli(["simulate", "--build", str(out), "--list", "1", "--sfreq", "500",

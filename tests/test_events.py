@@ -226,6 +226,7 @@ def test_build_writes_codes_plans_and_playlists(marked_build):
                                    "list", "order", "value"]
     man = json.loads((out / "manifest.json").read_text())
     table = {(c["condition"], c["repetition"]): c["value"] for c in man["events"]["codes"]}
+    # the documented default scheme: 10 x condition number + hearing (events.code_table)
     assert table == {("intact", 1): 11, ("intact", 2): 12, ("scrambled", 1): 21,
                      ("reversed", 1): 31}
     assert all(int(r["value"]) == table[(r["condition"], int(r["repetition"]))] for r in trials)
@@ -241,6 +242,7 @@ def test_build_writes_codes_plans_and_playlists(marked_build):
         for a, b in zip(body[:-1], body[1:]):
             assert float(b["onset"]) == pytest.approx(
                 float(a["onset"]) + float(a["duration"]) + float(b["interval"]), abs=2e-6)
+        # calc: iti 1.25 s + a uniform jitter of width 0.4 s (the recipe above)
         assert all(1.25 <= float(e["interval"]) <= 1.65 for e in body)
         with open(out / "events" / f"list-{n}_playlist.csv", newline="") as fh:
             pl = list(csv.DictReader(fh))
@@ -268,7 +270,7 @@ def test_marker_copies_hold_the_speech_and_two_pulses(marked_build):
     n = round(0.004 * sr)  # calc: 64 samples at 16 kHz
     on = np.flatnonzero(y[:, 1] > 0.25)
     assert on.tolist() == list(range(n)) + list(range(onset, onset + n))
-    assert rates.window == 3.0
+    assert rates.window == 3.0  # calc: 3 lines x 4 syllables x 0.25 s
 
 
 def test_recomputed_plan_equals_the_written_one(marked_build, tmp_path):

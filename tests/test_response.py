@@ -173,6 +173,8 @@ def test_planted_phase_shift_between_hearings_is_recovered(rng, shift_deg):
     # stated SNR: 0.5 uV at 1 Hz in 5 uV white noise over 8 s at 250 Hz = single-trial power
     # SNR 1 + 0.25 / (4 * 25 / 2000) = 6 [calc]; 20 items per hearing
     assert row["paired"] and row["n_items"] == 20 and row["responding"]
+    # the accuracy the analysis promises at this SNR (+-15 deg; a spec bound, not a published
+    # value), and the bootstrap interval must hold the planted shift
     assert row["difference_deg"] == pytest.approx(shift_deg, abs=15.0)
     assert row["ci_deg"][0] <= shift_deg <= row["ci_deg"][1]
     # dt = dphi / (360 f): 60 deg at 1 Hz = 166.7 ms (DOMAIN.md phase-to-time rule)
@@ -334,14 +336,17 @@ def test_group_finds_a_weak_effect_and_its_contrast_and_phase_shift(rng):
     gp = [r for r in res.group_phase_rows if r["significant"]]
     assert [(r["condition"], r["channel"], r["level"], r["harmonic"]) for r in gp] == \
         [("intact", "C2", "line", 1)]
+    # weak responses in 12 participants: the group's shift is only roughly known (a spec bound
+    # around the planted 40 deg, not a published value)
     assert gp[0]["difference_deg"] == pytest.approx(40.0, abs=25.0)
     assert all(r["n_participants"] == 12 for r in res.group_rows)
 
 
 def test_group_of_weak_responses_is_found_when_most_individuals_miss_it(rng):
-    # gamma 0.12, 24 trials, 30 participants, 12 tests: the planner gives a group power of
-    # 1.000 and one participant's power of 0.19 (stimforge.planner, 4000 simulations; checked
-    # against a direct time-domain Monte Carlo in tests/test_planner.py)
+    # gamma 0.12, 24 trials, 12 tests: one participant's power is 0.194, the noncentral F of
+    # T2circ (Victor & Mast 1991; calc: ncf.sf(f.isf(0.05/12, 2, 46), 2, 46, 2*24*0.12)), so
+    # about 6 of 30 participants are significant alone; the group power over 30 is ~1 (the
+    # planner, which tests/test_planner.py checks against a direct Monte Carlo)
     sets = _group_sets(rng, n_part=30, gamma=0.12, shift_deg=0.0)
     res = R.analyze(sets, unit_duration=0.25, levels=LEVELS, rng=7, n_boot=200, n_perm=200)
     individually = sum(("intact", "C2", "line", 1) in _sig(p) for p in res.participants)
@@ -558,6 +563,7 @@ def test_results_have_tables_reprs_figures_and_a_report(tmp_path, rng):
         s["ch_names"] = ["Fz", "Cz", "Pz", last]
     res = R.analyze(sets, unit_duration=0.25, levels=LEVELS, rng=11, n_perm=200, n_boot=200)
     part = res.participants[0]
+    # calc: 3 participants x 2 conditions x 4 channels x 5 targets
     assert isinstance(res.findings, pd.DataFrame) and len(res.findings) == 3 * 2 * 4 * 5
     assert isinstance(part.phase_differences, pd.DataFrame)
     assert isinstance(res.group, pd.DataFrame) and set(res.group["channel"]) == {"Fz", "Cz", "Pz"}
@@ -571,7 +577,7 @@ def test_results_have_tables_reprs_figures_and_a_report(tmp_path, rng):
     assert "<title>stimforge response analysis" in text
     assert "line 1 Hz" in text and "Rayleigh" in text and "Group (3 participants)" in text
     pngs = sorted((tmp_path / "rep" / "analysis_figures").glob("*.png"))
-    assert len(pngs) >= 3 * 4
+    assert len(pngs) >= 3 * 4  # calc: at least 4 figures per participant, 3 participants
     assert max(_png_width(p) for p in pngs) <= 1200  # fits a 1280 px screen
     assert write_report(res, tmp_path / "rep") == page  # our own page may be replaced
     (tmp_path / "other").mkdir()

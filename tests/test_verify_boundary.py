@@ -133,6 +133,10 @@ def test_boundary_contrast_catches_a_cue_the_position_test_dilutes(rng):
                if (r["level"], r["feature"]) == ("t", "rms_db"))
     bnd = next(r for r in V.boundary_rows(F, None, design=d, condition="c")
                if (r["level"], r["feature"], r["where"]) == ("t", "rms_db", "last"))
+    # spec bounds, not published values: the contrast sees the +0.8 SD unit in every one of the
+    # 12 x 4 blocks, the position test only diluted (1 of 8 positions), so it must be far
+    # stronger; its effect (a median over 48 blocks of unit-SD noise, SE ~ 0.18, calc) lies
+    # within 0.5 of the planted 0.8
     assert bnd["p"] < 1e-3 and bnd["p"] < pos["p"] / 20
     assert bnd["value"] == pytest.approx(0.8, abs=0.5)
 
@@ -233,6 +237,7 @@ def test_breakdown_tells_rendering_from_material(rng):
     loud[:, flag] += 2.0
     b = breakdown(loud, flagged=flag, compared=comp, unit="dB", feature="rms_db",
                   labels=labels, tokens=tokens, build=True)
+    # the planted +2 dB, within 5 SD of the 0.01 dB noise of these values (calc)
     assert b["driver"] == "rendering" and b["same_label_difference"] == pytest.approx(2.0, abs=0.05)
     assert b["setting"] and "level" in b["setting"]
     # (b) a label that only ever sits there, and is louder: inherent to the material
