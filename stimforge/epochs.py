@@ -561,6 +561,12 @@ def _order_pairs(pc: list[int], rc: list[int]) -> dict[int, int]:
     return pairs
 
 
+def _window_start(trigger: int, trial: Any, *, delay_s: Any, fs: Fraction) -> Fraction:
+    """The exact (absolute, sub-sample) sample where a trial's analysed window starts: its
+    trigger, plus the analysis onset and the audio delay, in samples."""
+    return Fraction(int(trigger)) + (trial.analysis_onset + exact(delay_s)) * fs
+
+
 def match_plan(recorded: RecordedCodes, plan: Plan, *, tolerance: float = 0.25,
                delay: float = 0.0, n_samples: int | None = None) -> MatchReport:
     """Lay the recorded codes against the plan and list every disagreement.
@@ -680,15 +686,16 @@ def match_plan(recorded: RecordedCodes, plan: Plan, *, tolerance: float = 0.25,
     trial_samples = {evs[i]["order"]: int(recorded.samples[k]) for i, k in pairs.items()
                      if evs[i]["order"] is not None and pc[i] == rec_c[k]}
     if n_samples is not None:
-        n_win = float(plan.window) * recorded.sfreq
+        fs = exact(recorded.sfreq)
+        n_win = round_half_up(plan.window * fs)
         for t in plan.trials:
             s = trial_samples.get(t.order)
             if s is None:
                 continue
-            end = (s - recorded.first_samp) + (float(t.analysis_onset) + delay) * recorded.sfreq \
-                + n_win
-            if end > n_samples or (s - recorded.first_samp) + (float(t.analysis_onset) + delay) \
-                    * recorded.sfreq < 0:
+            # the window exactly as cut_epochs will cut it
+            a = round_half_up(_window_start(s, t, delay_s=delay, fs=fs)) - recorded.first_samp
+            end = a + n_win
+            if end > n_samples or a < 0:
                 problems.append(Disagreement(
                     "outside", f"outside the recording: the analysed window of {t.describe()} "
                     f"ends at {end / recorded.sfreq:.3f} s, the recording at "
@@ -922,7 +929,7 @@ def cut_epochs(raw, plan: Plan, match: MatchReport, *, delay_ms: float = 0.0,
     max_off = 0.0
     for n, t in enumerate(chosen):
         trig = match.trial_samples[t.order]
-        start_exact = Fraction(trig) + (t.analysis_onset + delay) * fs
+        start_exact = _window_start(trig, t, delay_s=delay, fs=fs)
         start = round_half_up(start_exact)
         off = float(start_exact - start)
         max_off = max(max_off, abs(off))

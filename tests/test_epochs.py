@@ -177,6 +177,22 @@ def test_missing_and_extra_trigger_refused_with_both_named(built, rng):
     assert len(res.epochs) == 7
 
 
+def test_a_window_past_the_end_of_the_recording_is_named_before_cutting(built, rng):
+    # the recording stops one sample before the last trial's window ends (as cut_epochs would
+    # cut it): match_plan names it, so nothing is cut, and one sample more is enough
+    ses = simulate_session(built, list_number=1, sfreq=500.0, rng=rng, tail=0.0)
+    plan = read_plan(built, list_number=1)
+    last = max(plan.trials, key=lambda t: t.order)
+    trig = ses.trigger_samples[last.order] - ses.raw.first_samp
+    end = trig + round(float(last.analysis_onset) * 500) + round(float(plan.window) * 500)  # calc
+    short = ses.raw.copy().crop(tmax=(end - 1 - 1) / 500.0)  # crop keeps tmax: end - 1 samples
+    with pytest.raises(EpochError, match=f"outside the recording: the analysed window of trial "
+                                         f"{last.order} of the list"):
+        epoch_recording(short, build=built, list_number=1)
+    enough = ses.raw.copy().crop(tmax=(end - 1) / 500.0)  # exactly end samples
+    assert len(epoch_recording(enough, build=built, list_number=1).epochs) == len(plan.trials)
+
+
 def test_swapped_wrong_and_late_codes_named(built, rng):
     plan = read_plan(built, list_number=2)
     ses = simulate_session(built, list_number=2, sfreq=500.0, rng=rng, late={5: 0.8})
